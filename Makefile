@@ -1,0 +1,39 @@
+# Makefile for the affinity extension (PGXS)
+
+MODULE_big = affinity
+OBJS = \
+	src/core/util.o \
+	src/core/parallel.o \
+	src/core/interactions.o \
+	src/core/als.o \
+	src/core/topk.o \
+	src/core/model_format.o \
+	src/pg/guc.o \
+	src/pg/options.o \
+	src/pg/model_io.o \
+	src/pg/fit_agg.o \
+	src/pg/serving.o
+
+EXTENSION = affinity
+EXTVERSION = 1.0
+DATA = src/affinity--1.0.sql
+PGFILEDESC = "affinity - recommendation models in SQL"
+
+REGRESS = type fit serving errors
+REGRESS_OPTS = --inputdir=. --outputdir=. --load-extension=affinity
+
+BLAS_CFLAGS := $(shell pkg-config --cflags openblas 2>/dev/null)
+BLAS_LIBS := $(shell pkg-config --libs openblas 2>/dev/null || echo -lopenblas)
+
+PG_CPPFLAGS = $(BLAS_CFLAGS) -DAFFINITY_VERSION=\"$(EXTVERSION)\"
+PG_CFLAGS = -std=gnu11 -O3 -pthread
+SHLIB_LINK = $(BLAS_LIBS) -pthread -lm
+
+EXTRA_CLEAN = results regression.diffs regression.out
+
+# no LLVM bitcode: the JIT gains nothing here and it would need clang
+override with_llvm = no
+
+PG_CONFIG ?= pg_config
+PGXS := $(shell $(PG_CONFIG) --pgxs)
+include $(PGXS)

@@ -1,0 +1,85 @@
+/*
+ * aff_core.h
+ *		Shared definitions of affinity's numerical engine.
+ *
+ * The engine under src/core/ is plain C11 and includes no PostgreSQL header.
+ * It reports failures through AffStatus codes plus an AffError message
+ * buffer, allocates only through the AffAllocator the caller hands it, and
+ * runs its own worker threads.  The PostgreSQL binding (src/pg/) turns the
+ * codes into ereport() calls and supplies an allocator backed by a memory
+ * context, so the engine can be built, tested and fuzzed outside the server.
+ */
+#ifndef AFF_CORE_H
+#define AFF_CORE_H
+
+#include <stddef.h>
+#include <stdint.h>
+
+typedef enum AffStatus
+{
+	AFF_OK = 0,
+	AFF_ERR_NOMEM,				/* the allocator returned NULL */
+	AFF_ERR_CANCELLED,			/* the poll callback asked to stop */
+	AFF_ERR_INVALID,			/* bad input values or options */
+	AFF_ERR_CORRUPT,			/* model bytes fail validation */
+	AFF_ERR_LIMIT,				/* a size limit of the format is exceeded */
+	AFF_ERR_NUMERIC				/* a solver met a non positive definite system */
+} AffStatus;
+
+typedef struct AffError
+{
+	AffStatus	status;
+	char		msg[256];
+	char		detail[512];
+} AffError;
+
+/*
+ * Allocation interface.  alloc returns NULL on failure (never longjmps), and
+ * is only ever called from the thread that called into the engine, outside
+ * any parallel region.  Memory is returned uninitialised.
+ */
+typedef struct AffAllocator
+{
+	void	   *(*alloc) (void *ctx, size_t size);
+	void		(*release) (void *ctx, void *ptr);
+	void	   *ctx;
+} AffAllocator;
+
+/*
+ * Poll callback, called by the calling thread between blocks of work while
+ * workers run.  It must not longjmp; a nonzero result asks the engine to
+ * stop, join its workers and return AFF_ERR_CANCELLED.
+ */
+typedef int (*AffPollFn) (void *arg);
+
+extern AffStatus aff_fail(AffError *err, AffStatus status, const char *fmt,...)
+			__attribute__((format(printf, 3, 4)));
+extern AffStatus aff_detail(AffError *err, const char *fmt,...)
+			__attribute__((format(printf, 2, 3)));
+extern void *aff_alloc(const AffAllocator *a, size_t size);
+extern void *aff_alloc_array(const AffAllocator *a, size_t n, size_t elem);
+extern void aff_release(const AffAllocator *a, void *ptr);
+extern int	aff_mul_overflows(size_t a, size_t b, size_t *result);
+
+/* Method and option codes stored in the model header. */
+#define AFF_METHOD_IMPLICIT_ALS	1
+#define AFF_METHOD_POPULARITY	2
+#define AFF_METHOD_EASE			3
+#define AFF_METHOD_ITEM_KNN		4
+
+#define AFF_SOLVER_CG			1
+#define AFF_SOLVER_CHOLESKY		2
+
+#define AFF_CONFIDENCE_LINEAR	1
+#define AFF_CONFIDENCE_LOG		2
+
+#define AFF_KEYS_BIGINT			1
+#define AFF_KEYS_TEXT			2
+
+/* Largest factor count the engine accepts (keeps per-row scratch small). */
+#define AFF_MAX_FACTORS			1024
+
+/* Users and items are indexed with int32 in the sparse structures. */
+#define AFF_MAX_ENTITIES		((int64_t) 0x7fffffff)
+
+#endif							/* AFF_CORE_H */

@@ -1,0 +1,62 @@
+/*
+ * als.h
+ *		Implicit alternating least squares with confidence weights
+ *		(Hu, Koren, Volinsky 2008), solved per row exactly (Cholesky) or by
+ *		warm-started conjugate gradient (Takacs, Pilaszy, Tikk 2011).
+ */
+#ifndef AFF_ALS_H
+#define AFF_ALS_H
+
+#include "aff_core.h"
+#include "interactions.h"
+
+typedef struct AffAlsParams
+{
+	int			factors;
+	int			iterations;
+	int			solver;			/* AFF_SOLVER_* */
+	int			cg_steps;
+	int			confidence;		/* AFF_CONFIDENCE_* */
+	int			threads;		/* >= 1, already resolved */
+	double		regularization;
+	double		alpha;
+	double		epsilon;
+	uint64_t	seed;
+} AffAlsParams;
+
+typedef struct AffAls
+{
+	const AffMatrix *m;
+	AffAlsParams p;
+	float	   *X;				/* [n_users * f] user factors */
+	float	   *Y;				/* [n_items * f] item factors */
+	float	   *row_conf;		/* [nnz] confidence c_ui in row order */
+	float	   *col_conf;		/* [nnz] the same in column order */
+	float	   *gram_f;			/* [f * f] BLAS output */
+	double	   *gram;			/* [f * f] Gram matrix of the fixed side */
+	double		trace_x;		/* sum of |x_u|^2 at the last user solve */
+	double	   *scratch;		/* per-thread solver scratch */
+	size_t		scratch_len;	/* doubles per thread */
+	double	   *block_sums;		/* per-block partial sums, summed in order */
+	int64_t		max_blocks;
+	int			gram_is_y;		/* gram currently holds Y^T Y */
+} AffAls;
+
+extern double aff_confidence(int kind, double alpha, double epsilon, double w);
+extern AffStatus aff_als_init(AffAls *s, const AffMatrix *m,
+							  const AffAlsParams *p, const AffAllocator *a,
+							  AffError *err);
+extern AffStatus aff_als_sweep(AffAls *s, double *loss, AffPollFn poll,
+							   void *poll_arg, AffError *err);
+extern void aff_als_free(AffAls *s, const AffAllocator *a);
+
+/* Dense helpers shared with serving (fold-in). */
+extern void aff_gram(const float *F, int64_t n, int f, int threads,
+					 float *gram_f, double *gram);
+extern int	aff_solve_row(const float *F, const double *gram, int f,
+						  double lambda, const int32_t *idx, const float *conf,
+						  int64_t len, int solver, int cg_steps, float *x,
+						  double *scratch);
+extern size_t aff_solve_scratch_len(int f);
+
+#endif

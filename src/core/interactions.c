@@ -1,0 +1,303 @@
+/*
+ * interactions.c
+ *		Sort the collected rows, sum duplicates, apply the minimum-interaction
+ *		filters and build the two CSR views the solvers need.
+ *
+ * The rows array is sorted in place (it is the aggregate's own state and is
+ * not needed afterwards).  Filtering is a single pass: a user or item is
+ * dropped when it has fewer distinct partners than its minimum in the full
+ * input; users and items left with no interaction are dropped too.
+ */
+#include "interactions.h"
+
+#include <math.h>
+#include <stdlib.h>
+#include <string.h>
+
+static int
+cmp_triple(const void *a, const void *b)
+{
+	const AffTriple *x = a;
+	const AffTriple *y = b;
+
+	if (x->user != y->user)
+		return x->user < y->user ? -1 : 1;
+	if (x->item != y->item)
+		return x->item < y->item ? -1 : 1;
+	return 0;
+}
+
+static int
+cmp_int64(const void *a, const void *b)
+{
+	int64_t		x = *(const int64_t *) a;
+	int64_t		y = *(const int64_t *) b;
+
+	return x < y ? -1 : (x > y);
+}
+
+/* Index of key in the ascending array keys[0..n), or -1. */
+int64_t
+aff_find_key(const int64_t *keys, int64_t n, int64_t key)
+{
+	int64_t		lo = 0;
+	int64_t		hi = n;
+
+	while (lo < hi)
+	{
+		int64_t		mid = lo + (hi - lo) / 2;
+
+		if (keys[mid] < key)
+			lo = mid + 1;
+		else
+			hi = mid;
+	}
+	return (lo < n && keys[lo] == key) ? lo : -1;
+}
+
+/* Sort rows by (user, item) and sum duplicates; returns the distinct count. */
+static int64_t
+merge_duplicates(AffTriple *rows, int64_t n)
+{
+	int64_t		out = 0;
+	int64_t		i;
+
+	qsort(rows, (size_t) n, sizeof(AffTriple), cmp_triple);
+	for (i = 0; i < n; i++)
+	{
+		if (out > 0 && rows[out - 1].user == rows[i].user &&
+			rows[out - 1].item == rows[i].item)
+			rows[out - 1].weight += rows[i].weight;
+		else
+			rows[out++] = rows[i];
+	}
+	return out;
+}
+
+/*
+ * Count, for each distinct item, its distinct users; items[] receives the
+ * sorted distinct item keys and counts[] their counts.  Returns the number
+ * of distinct items.  items and counts must hold n entries.
+ */
+static int64_t
+count_items(const AffTriple *rows, int64_t n, int64_t *items, int64_t *counts)
+{
+	int64_t		n_items = 0;
+	int64_t		i;
+
+	for (i = 0; i < n; i++)
+		items[i] = rows[i].item;
+	qsort(items, (size_t) n, sizeof(int64_t), cmp_int64);
+	for (i = 0; i < n; i++)
+	{
+		if (n_items > 0 && items[n_items - 1] == items[i])
+			counts[n_items - 1]++;
+		else
+		{
+			items[n_items] = items[i];
+			counts[n_items] = 1;
+			n_items++;
+		}
+	}
+	return n_items;
+}
+
+/*
+ * Drop rows of users and items below their minimum partner counts (a single
+ * pass over the counts of the full input).  Compacts rows in place and
+ * returns the number kept.
+ */
+static int64_t
+apply_minimums(AffTriple *rows, int64_t n, int min_user, int min_item,
+			   const int64_t *items, const int64_t *counts, int64_t n_items,
+			   AffMatrix *m)
+{
+	int64_t		out = 0;
+	int64_t		start = 0;
+	int64_t		i;
+
+	for (i = 0; i < n_items; i++)
+		if (counts[i] < min_item)
+			m->dropped_items++;
+
+	while (start < n)
+	{
+		int64_t		end = start;
+
+		while (end < n && rows[end].user == rows[start].user)
+			end++;
+		if (end - start < min_user)
+		{
+			m->dropped_users++;
+			m->dropped_interactions += end - start;
+		}
+		else
+		{
+			for (i = start; i < end; i++)
+			{
+				int64_t		k = aff_find_key(items, n_items, rows[i].item);
+
+				if (counts[k] < min_item)
+					m->dropped_interactions++;
+				else
+					rows[out++] = rows[i];
+			}
+		}
+		start = end;
+	}
+	return out;
+}
+
+/* Fill the by-item CSR as the transpose of the by-user CSR (counting sort). */
+static void
+transpose(AffMatrix *m)
+{
+	int64_t		u;
+	int64_t		j;
+
+	memset(m->col_ptr, 0, sizeof(int64_t) * (size_t) (m->n_items + 1));
+	for (j = 0; j < m->nnz; j++)
+		m->col_ptr[m->row_idx[j] + 1]++;
+	for (j = 0; j < m->n_items; j++)
+		m->col_ptr[j + 1] += m->col_ptr[j];
+	/* row_ptr-ordered scan keeps user indices ascending within each column */
+	for (u = 0; u < m->n_users; u++)
+	{
+		for (j = m->row_ptr[u]; j < m->row_ptr[u + 1]; j++)
+		{
+			int32_t		i = m->row_idx[j];
+			int64_t		pos = m->col_ptr[i]++;
+
+			m->col_idx[pos] = (int32_t) u;
+			m->col_val[pos] = m->row_val[j];
+		}
+	}
+	for (j = m->n_items; j > 0; j--)
+		m->col_ptr[j] = m->col_ptr[j - 1];
+	m->col_ptr[0] = 0;
+}
+
+static AffStatus
+alloc_matrix(const AffAllocator *a, AffMatrix *m, AffError *err)
+{
+	m->user_keys = aff_alloc_array(a, (size_t) m->n_users, sizeof(int64_t));
+	m->item_keys = aff_alloc_array(a, (size_t) m->n_items, sizeof(int64_t));
+	m->row_ptr = aff_alloc_array(a, (size_t) m->n_users + 1, sizeof(int64_t));
+	m->row_idx = aff_alloc_array(a, (size_t) m->nnz, sizeof(int32_t));
+	m->row_val = aff_alloc_array(a, (size_t) m->nnz, sizeof(float));
+	m->col_ptr = aff_alloc_array(a, (size_t) m->n_items + 1, sizeof(int64_t));
+	m->col_idx = aff_alloc_array(a, (size_t) m->nnz, sizeof(int32_t));
+	m->col_val = aff_alloc_array(a, (size_t) m->nnz, sizeof(float));
+	if (!m->user_keys || !m->item_keys || !m->row_ptr || !m->row_idx ||
+		!m->row_val || !m->col_ptr || !m->col_idx || !m->col_val)
+		return aff_fail(err, AFF_ERR_NOMEM, "out of memory building the interaction matrix");
+	return AFF_OK;
+}
+
+/*
+ * Build m from rows[0..n_rows).  rows is reordered and overwritten.  On
+ * success m owns its arrays (free with aff_matrix_free).  An input that
+ * ends up empty after filtering is AFF_ERR_INVALID.
+ */
+AffStatus
+aff_matrix_build(AffTriple *rows, int64_t n_rows, int min_user, int min_item,
+				 const AffAllocator *a, AffMatrix *m, AffError *err)
+{
+	int64_t    *items;
+	int64_t    *counts;
+	int64_t		n_items;
+	int64_t		n;
+	int64_t		i;
+	int64_t		u;
+	AffStatus	st;
+
+	memset(m, 0, sizeof(*m));
+	n = merge_duplicates(rows, n_rows);
+	m->duplicates_summed = n_rows - n;
+	for (i = 0; i < n; i++)
+	{
+		if (!isfinite(rows[i].weight))
+		{
+			aff_fail(err, AFF_ERR_INVALID, "summed weight is out of range");
+			return aff_detail(err, "The weights of user %lld and item %lld add up to more than a real can hold.",
+							  (long long) rows[i].user, (long long) rows[i].item);
+		}
+	}
+
+	items = aff_alloc_array(a, (size_t) n, sizeof(int64_t));
+	counts = aff_alloc_array(a, (size_t) n, sizeof(int64_t));
+	if (!items || !counts)
+	{
+		aff_release(a, items);
+		aff_release(a, counts);
+		return aff_fail(err, AFF_ERR_NOMEM, "out of memory building the interaction matrix");
+	}
+	n_items = count_items(rows, n, items, counts);
+	n = apply_minimums(rows, n, min_user, min_item, items, counts, n_items, m);
+	aff_release(a, counts);
+	aff_release(a, items);
+
+	if (n == 0)
+		return aff_fail(err, AFF_ERR_INVALID,
+						"no interactions are left after the minimum-interaction filters");
+
+	/* distinct users and items of the kept rows */
+	m->nnz = n;
+	m->n_users = 0;
+	for (i = 0; i < n; i++)
+		if (i == 0 || rows[i].user != rows[i - 1].user)
+			m->n_users++;
+	items = aff_alloc_array(a, (size_t) n, sizeof(int64_t));
+	if (!items)
+		return aff_fail(err, AFF_ERR_NOMEM, "out of memory building the interaction matrix");
+	for (i = 0; i < n; i++)
+		items[i] = rows[i].item;
+	qsort(items, (size_t) n, sizeof(int64_t), cmp_int64);
+	m->n_items = 0;
+	for (i = 0; i < n; i++)
+		if (i == 0 || items[i] != items[i - 1])
+			items[m->n_items++] = items[i];
+
+	if (m->n_users > AFF_MAX_ENTITIES || m->n_items > AFF_MAX_ENTITIES)
+	{
+		aff_release(a, items);
+		return aff_fail(err, AFF_ERR_LIMIT, "too many distinct users or items for one model");
+	}
+	st = alloc_matrix(a, m, err);
+	if (st == AFF_OK)
+	{
+		memcpy(m->item_keys, items, sizeof(int64_t) * (size_t) m->n_items);
+		u = -1;
+		for (i = 0; i < n; i++)
+		{
+			if (i == 0 || rows[i].user != rows[i - 1].user)
+			{
+				u++;
+				m->user_keys[u] = rows[i].user;
+				m->row_ptr[u] = i;
+			}
+			m->row_idx[i] = (int32_t) aff_find_key(m->item_keys, m->n_items, rows[i].item);
+			m->row_val[i] = rows[i].weight;
+		}
+		m->row_ptr[m->n_users] = n;
+		transpose(m);
+	}
+	aff_release(a, items);
+	if (st != AFF_OK)
+		aff_matrix_free(a, m);
+	return st;
+}
+
+void
+aff_matrix_free(const AffAllocator *a, AffMatrix *m)
+{
+	aff_release(a, m->user_keys);
+	aff_release(a, m->item_keys);
+	aff_release(a, m->row_ptr);
+	aff_release(a, m->row_idx);
+	aff_release(a, m->row_val);
+	aff_release(a, m->col_ptr);
+	aff_release(a, m->col_idx);
+	aff_release(a, m->col_val);
+	memset(m, 0, sizeof(*m));
+}

@@ -1,0 +1,435 @@
+/*
+ * model_format.c
+ *		Encode, validate and view affinity.model values (layout in
+ *		model_format.h).
+ *
+ * Validation is complete: the header, every section's kind, size, offset
+ * and bounds, overlaps, the checksum, and the content (sorted keys, finite
+ * numbers, CSR offsets and indices in range).  A value that passes can be
+ * read by the serving code without further bounds checks.
+ */
+#include "model_format.h"
+
+#include <math.h>
+#include <string.h>
+
+#if defined(__BYTE_ORDER__) && __BYTE_ORDER__ != __ORDER_LITTLE_ENDIAN__
+#error "affinity's model format is little-endian; this machine is not"
+#endif
+
+_Static_assert(sizeof(AffModelHeader) == 256, "model header must be 256 bytes");
+_Static_assert(sizeof(AffSection) == 24, "section entry must be 24 bytes");
+
+#define ALIGN8(x) (((x) + 7) & ~(uint64_t) 7)
+
+size_t
+aff_section_elem_size(int kind)
+{
+	switch (kind)
+	{
+		case AFF_SEC_USER_KEYS:
+		case AFF_SEC_ITEM_KEYS:
+		case AFF_SEC_SEEN_PTR:
+		case AFF_SEC_LOSS:
+		case AFF_SEC_SWEEP_SECONDS:
+			return 8;
+		case AFF_SEC_USER_FACTORS:
+		case AFF_SEC_ITEM_FACTORS:
+		case AFF_SEC_SEEN_ITEMS:
+		case AFF_SEC_SEEN_WEIGHTS:
+		case AFF_SEC_POPULARITY:
+			return 4;
+	}
+	return 0;
+}
+
+const char *
+aff_method_name(int method)
+{
+	switch (method)
+	{
+		case AFF_METHOD_IMPLICIT_ALS:
+			return "implicit_als";
+		case AFF_METHOD_POPULARITY:
+			return "popularity";
+		case AFF_METHOD_EASE:
+			return "ease";
+		case AFF_METHOD_ITEM_KNN:
+			return "item_knn";
+	}
+	return "unknown";
+}
+
+/* A word-at-a-time multiply-xorshift hash: detects damage, not attacks. */
+uint64_t
+aff_hash(const uint8_t *p, uint64_t n, uint64_t h)
+{
+	const uint64_t K = 0x9e3779b97f4a7c15ULL;
+	uint64_t	w;
+
+	while (n >= 8)
+	{
+		memcpy(&w, p, 8);
+		h = (h ^ w) * K;
+		h ^= h >> 32;
+		p += 8;
+		n -= 8;
+	}
+	w = 0;
+	memcpy(&w, p, n);
+	h = (h ^ w ^ (n << 56)) * K;
+	h ^= h >> 29;
+	return h;
+}
+
+/* Checksum of a value of len bytes: all but the length word and itself. */
+uint64_t
+aff_model_checksum(const uint8_t *buf, uint64_t len)
+{
+	size_t		off = offsetof(AffModelHeader, checksum);
+	uint64_t	h = 0x5851f42d4c957f2dULL;
+
+	h = aff_hash(buf + 4, off - 4, h);
+	h = aff_hash(buf + off + 8, len - off - 8, h);
+	return h ^ (h >> 31);
+}
+
+static uint64_t
+table_end(int n_sections)
+{
+	return ALIGN8(sizeof(AffModelHeader) + (uint64_t) n_sections * sizeof(AffSection));
+}
+
+/* Total size of the value that aff_model_write would produce. */
+AffStatus
+aff_model_size(const AffModelParts *parts, uint64_t *size, AffError *err)
+{
+	int			n = 0;
+	int			k;
+	uint64_t	total;
+
+	for (k = 1; k <= AFF_SEC_MAX; k++)
+		if (parts->data[k] != NULL)
+			n++;
+	total = table_end(n);
+	for (k = 1; k <= AFF_SEC_MAX; k++)
+	{
+		size_t		bytes;
+
+		if (parts->data[k] == NULL)
+			continue;
+		if (aff_mul_overflows(parts->count[k], aff_section_elem_size(k), &bytes) ||
+			total + ALIGN8(bytes) < total)
+			return aff_fail(err, AFF_ERR_LIMIT, "model is too large");
+		total += ALIGN8(bytes);
+	}
+	*size = total;
+	return AFF_OK;
+}
+
+/*
+ * Write the value into buf (size bytes from aff_model_size).  Padding is
+ * zeroed so equal content gives equal bytes.
+ */
+void
+aff_model_write(const AffModelParts *parts, uint8_t *buf, uint64_t size)
+{
+	AffModelHeader h = parts->h;
+	AffSection *table = (AffSection *) (buf + sizeof(AffModelHeader));
+	uint64_t	off;
+	uint64_t	fp = 0x2545f4914f6cdd1dULL;
+	int			n = 0;
+	int			k;
+
+	memset(buf, 0, size);
+	for (k = 1; k <= AFF_SEC_MAX; k++)
+		if (parts->data[k] != NULL)
+			n++;
+	memcpy(h.magic, AFF_MAGIC, 4);
+	h.version = AFF_FORMAT_VERSION;
+	h.n_sections = (uint16_t) n;
+	h.total_size = size;
+	h.checksum = 0;
+	h.fingerprint = 0;
+
+	off = table_end(n);
+	n = 0;
+	for (k = 1; k <= AFF_SEC_MAX; k++)
+	{
+		uint64_t	bytes;
+
+		if (parts->data[k] == NULL)
+			continue;
+		bytes = parts->count[k] * aff_section_elem_size(k);
+		table[n].kind = (uint32_t) k;
+		table[n].elem_size = (uint32_t) aff_section_elem_size(k);
+		table[n].offset = off;
+		table[n].count = parts->count[k];
+		if (bytes > 0)
+			memcpy(buf + off, parts->data[k], bytes);
+		if (k != AFF_SEC_SWEEP_SECONDS)
+			fp = aff_hash(buf + off, bytes, fp);
+		off += ALIGN8(bytes);
+		n++;
+	}
+
+	/* the fingerprint leaves out wall-clock timings */
+	{
+		AffModelHeader hc = h;
+
+		hc.varlena_word = 0;
+		hc.fit_seconds = 0;
+		fp = aff_hash((const uint8_t *) &hc, sizeof(hc), fp);
+		fp = aff_hash((const uint8_t *) table, (uint64_t) n * sizeof(AffSection), fp);
+	}
+	h.fingerprint = fp;
+	memcpy(buf + 4, ((const uint8_t *) &h) + 4, sizeof(h) - 4);
+	h.checksum = aff_model_checksum(buf, size);
+	memcpy(buf + offsetof(AffModelHeader, checksum), &h.checksum, 8);
+}
+
+static AffStatus
+corrupt(AffError *err, const char *fmt, uint64_t a, uint64_t b)
+{
+	aff_fail(err, AFF_ERR_CORRUPT, "invalid affinity.model value");
+	return aff_detail(err, fmt, (unsigned long long) a, (unsigned long long) b);
+}
+
+/*
+ * Structural view: header, section table, bounds and overlaps, required
+ * sections and their counts.  O(number of sections); no content scan and
+ * no checksum.  Used by validation and, for values already validated on
+ * their way in, by the serving functions.
+ */
+AffStatus
+aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
+{
+	const AffModelHeader *h = (const AffModelHeader *) buf;
+	const AffSection *table;
+	const void *sec[AFF_SEC_MAX + 1] = {0};
+	uint64_t	cnt[AFF_SEC_MAX + 1] = {0};
+	uint64_t	data_start;
+	int			i;
+	int			j;
+
+	memset(v, 0, sizeof(*v));
+	if (((uintptr_t) buf & 7) != 0)
+		return corrupt(err, "The value is not 8-byte aligned in memory.",
+					   (uint64_t) (uintptr_t) buf & 7, 0);
+	if (len < sizeof(AffModelHeader))
+		return corrupt(err, "The value has %llu bytes, fewer than the %llu of a header.",
+					   len, sizeof(AffModelHeader));
+	if (memcmp(h->magic, AFF_MAGIC, 4) != 0)
+		return corrupt(err, "The value does not start with the model signature.", 0, 0);
+	if (h->version != AFF_FORMAT_VERSION)
+	{
+		aff_fail(err, AFF_ERR_CORRUPT, "unsupported affinity.model format version %u",
+				 (unsigned) h->version);
+		return aff_detail(err, "This build of affinity reads format version %d.",
+						  AFF_FORMAT_VERSION);
+	}
+	if (h->total_size != len)
+		return corrupt(err, "The header says %llu bytes but the value has %llu.",
+					   h->total_size, len);
+	if (h->n_sections > AFF_SEC_MAX)
+		return corrupt(err, "The value lists %llu sections; at most %llu exist.",
+					   h->n_sections, AFF_SEC_MAX);
+	data_start = table_end(h->n_sections);
+	if (data_start > len)
+		return corrupt(err, "The section table ends at byte %llu, past the end.",
+					   data_start, len);
+	table = (const AffSection *) (buf + sizeof(AffModelHeader));
+	for (i = 0; i < h->n_sections; i++)
+	{
+		const AffSection *s = &table[i];
+		size_t		bytes;
+
+		if (s->kind < 1 || s->kind > AFF_SEC_MAX || sec[s->kind] != NULL)
+			return corrupt(err, "Section %llu has an unknown or repeated kind %llu.",
+						   i, s->kind);
+		if (s->elem_size != aff_section_elem_size((int) s->kind))
+			return corrupt(err, "Section kind %llu has element size %llu.",
+						   s->kind, s->elem_size);
+		if ((s->offset & 7) != 0 || s->offset < data_start || s->offset > len)
+			return corrupt(err, "Section kind %llu starts at a bad offset %llu.",
+						   s->kind, s->offset);
+		if (aff_mul_overflows(s->count, s->elem_size, &bytes) || bytes > len - s->offset)
+			return corrupt(err, "Section kind %llu with %llu elements runs past the end.",
+						   s->kind, s->count);
+		for (j = 0; j < i; j++)
+		{
+			const AffSection *o = &table[j];
+			uint64_t	obytes = o->count * o->elem_size;
+
+			if (s->offset < o->offset + obytes && o->offset < s->offset + bytes)
+				return corrupt(err, "Sections of kinds %llu and %llu overlap.",
+							   s->kind, o->kind);
+		}
+		sec[s->kind] = buf + s->offset;
+		cnt[s->kind] = s->count;
+	}
+
+	if (h->method != AFF_METHOD_IMPLICIT_ALS && h->method != AFF_METHOD_POPULARITY)
+		return corrupt(err, "Unknown method code %llu.", h->method, 0);
+	if (h->key_type != AFF_KEYS_BIGINT)
+		return corrupt(err, "Unknown key type code %llu.", h->key_type, 0);
+	if (h->n_users < 1 || h->n_items < 1 || h->nnz < 1 ||
+		h->n_users > AFF_MAX_ENTITIES || h->n_items > AFF_MAX_ENTITIES)
+		return corrupt(err, "Bad counts: %llu users, %llu items.",
+					   (uint64_t) h->n_users, (uint64_t) h->n_items);
+	if (cnt[AFF_SEC_USER_KEYS] != (uint64_t) h->n_users || !sec[AFF_SEC_USER_KEYS] ||
+		cnt[AFF_SEC_ITEM_KEYS] != (uint64_t) h->n_items || !sec[AFF_SEC_ITEM_KEYS])
+		return corrupt(err, "Key dictionaries are missing or hold %llu users / %llu items.",
+					   cnt[AFF_SEC_USER_KEYS], cnt[AFF_SEC_ITEM_KEYS]);
+	if (cnt[AFF_SEC_SEEN_PTR] != (uint64_t) h->n_users + 1 ||
+		cnt[AFF_SEC_SEEN_ITEMS] != (uint64_t) h->nnz ||
+		cnt[AFF_SEC_SEEN_WEIGHTS] != (uint64_t) h->nnz ||
+		!sec[AFF_SEC_SEEN_PTR] || !sec[AFF_SEC_SEEN_ITEMS] || !sec[AFF_SEC_SEEN_WEIGHTS])
+		return corrupt(err, "Training lists are missing or hold %llu offsets / %llu items.",
+					   cnt[AFF_SEC_SEEN_PTR], cnt[AFF_SEC_SEEN_ITEMS]);
+	if (cnt[AFF_SEC_POPULARITY] != (uint64_t) h->n_items || !sec[AFF_SEC_POPULARITY])
+		return corrupt(err, "Popularity holds %llu entries for %llu items.",
+					   cnt[AFF_SEC_POPULARITY], (uint64_t) h->n_items);
+	if (cnt[AFF_SEC_LOSS] != cnt[AFF_SEC_SWEEP_SECONDS])
+		return corrupt(err, "%llu losses but %llu sweep timings.",
+					   cnt[AFF_SEC_LOSS], cnt[AFF_SEC_SWEEP_SECONDS]);
+	if (h->method == AFF_METHOD_IMPLICIT_ALS)
+	{
+		uint64_t	f = (uint64_t) h->factors;
+
+		if (h->factors < 1 || h->factors > AFF_MAX_FACTORS)
+			return corrupt(err, "Factor count %llu is outside 1..%llu.",
+						   (uint64_t) (int64_t) h->factors, AFF_MAX_FACTORS);
+		if (!sec[AFF_SEC_USER_FACTORS] || !sec[AFF_SEC_ITEM_FACTORS] ||
+			cnt[AFF_SEC_USER_FACTORS] != f * (uint64_t) h->n_users ||
+			cnt[AFF_SEC_ITEM_FACTORS] != f * (uint64_t) h->n_items)
+			return corrupt(err, "Factor matrices are missing or hold %llu / %llu numbers.",
+						   cnt[AFF_SEC_USER_FACTORS], cnt[AFF_SEC_ITEM_FACTORS]);
+	}
+
+	v->h = h;
+	v->user_keys = sec[AFF_SEC_USER_KEYS];
+	v->item_keys = sec[AFF_SEC_ITEM_KEYS];
+	v->user_factors = sec[AFF_SEC_USER_FACTORS];
+	v->item_factors = sec[AFF_SEC_ITEM_FACTORS];
+	v->seen_ptr = sec[AFF_SEC_SEEN_PTR];
+	v->seen_items = sec[AFF_SEC_SEEN_ITEMS];
+	v->seen_weights = sec[AFF_SEC_SEEN_WEIGHTS];
+	v->popularity = sec[AFF_SEC_POPULARITY];
+	v->loss = sec[AFF_SEC_LOSS];
+	v->sweep_seconds = sec[AFF_SEC_SWEEP_SECONDS];
+	v->n_sweeps = (int64_t) cnt[AFF_SEC_LOSS];
+	return AFF_OK;
+}
+
+static int
+strictly_ascending(const int64_t *k, int64_t n)
+{
+	int64_t		i;
+
+	for (i = 1; i < n; i++)
+		if (k[i] <= k[i - 1])
+			return 0;
+	return 1;
+}
+
+/* Index of the first non-finite value, or -1. */
+static int64_t
+first_non_finite_f(const float *x, uint64_t n)
+{
+	uint64_t	i;
+
+	for (i = 0; i < n; i++)
+		if (!isfinite(x[i]))
+			return (int64_t) i;
+	return -1;
+}
+
+static AffStatus
+check_options(const AffModelHeader *h, AffError *err)
+{
+	if (!isfinite(h->regularization) || h->regularization < 0 ||
+		!isfinite(h->alpha) || h->alpha < 0 ||
+		!isfinite(h->epsilon) || h->epsilon <= 0 ||
+		!isfinite(h->fit_seconds) || h->fit_seconds < 0)
+		return corrupt(err, "Options or timings hold out-of-range numbers.", 0, 0);
+	if (h->method == AFF_METHOD_IMPLICIT_ALS &&
+		((h->solver != AFF_SOLVER_CG && h->solver != AFF_SOLVER_CHOLESKY) ||
+		 (h->confidence != AFF_CONFIDENCE_LINEAR && h->confidence != AFF_CONFIDENCE_LOG)))
+		return corrupt(err, "Unknown solver %llu or confidence %llu.",
+					   (uint64_t) h->solver, (uint64_t) h->confidence);
+	return AFF_OK;
+}
+
+/* The content checks that the structural view leaves out. */
+static AffStatus
+check_content(const AffModelView *v, AffError *err)
+{
+	const AffModelHeader *h = v->h;
+	int64_t		u;
+	int64_t		j;
+	int64_t		bad;
+
+	if (!strictly_ascending(v->user_keys, h->n_users) ||
+		!strictly_ascending(v->item_keys, h->n_items))
+		return corrupt(err, "A key dictionary is not strictly ascending (%llu users, %llu items).",
+					   (uint64_t) h->n_users, (uint64_t) h->n_items);
+	if (v->seen_ptr[0] != 0 || v->seen_ptr[h->n_users] != h->nnz)
+		return corrupt(err, "Training list offsets run from %llu to %llu.",
+					   (uint64_t) v->seen_ptr[0], (uint64_t) v->seen_ptr[h->n_users]);
+	for (u = 0; u < h->n_users; u++)
+	{
+		if (v->seen_ptr[u + 1] < v->seen_ptr[u])
+			return corrupt(err, "Training list offsets decrease at user index %llu.",
+						   (uint64_t) u, 0);
+		for (j = v->seen_ptr[u]; j < v->seen_ptr[u + 1]; j++)
+		{
+			int32_t		i = v->seen_items[j];
+
+			if (i < 0 || i >= h->n_items ||
+				(j > v->seen_ptr[u] && i <= v->seen_items[j - 1]))
+				return corrupt(err, "Training item index %llu of user index %llu is out of range or order.",
+							   (uint64_t) (int64_t) i, (uint64_t) u);
+			if (!(v->seen_weights[j] > 0) || !isfinite(v->seen_weights[j]))
+				return corrupt(err, "Training weight %llu of user index %llu is not a positive number.",
+							   (uint64_t) j, (uint64_t) u);
+		}
+	}
+	for (j = 0; j < h->n_items; j++)
+		if (!(v->popularity[j] >= 0) || !isfinite(v->popularity[j]))
+			return corrupt(err, "Popularity of item index %llu is not a finite non-negative number.",
+						   (uint64_t) j, 0);
+	for (j = 0; j < v->n_sweeps; j++)
+		if (!isfinite(v->loss[j]) || !isfinite(v->sweep_seconds[j]))
+			return corrupt(err, "Loss or timing of sweep %llu is not finite.",
+						   (uint64_t) j + 1, 0);
+	if (h->method == AFF_METHOD_IMPLICIT_ALS)
+	{
+		uint64_t	f = (uint64_t) h->factors;
+
+		if ((bad = first_non_finite_f(v->user_factors, f * h->n_users)) >= 0)
+			return corrupt(err, "User factor %llu of user index %llu is not finite.",
+						   (uint64_t) bad % f, (uint64_t) bad / f);
+		if ((bad = first_non_finite_f(v->item_factors, f * h->n_items)) >= 0)
+			return corrupt(err, "Item factor %llu of item index %llu is not finite.",
+						   (uint64_t) bad % f, (uint64_t) bad / f);
+	}
+	return check_options(h, err);
+}
+
+/* Full validation of len bytes at buf; fills *v on success. */
+AffStatus
+aff_model_validate(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
+{
+	AffStatus	st = aff_model_view(buf, len, v, err);
+
+	if (st != AFF_OK)
+		return st;
+	if (aff_model_checksum(buf, len) != v->h->checksum)
+	{
+		aff_fail(err, AFF_ERR_CORRUPT, "affinity.model checksum mismatch");
+		return aff_detail(err, "The value's bytes do not match its checksum %016llx; it was damaged or altered.",
+						  (unsigned long long) v->h->checksum);
+	}
+	return check_content(v, err);
+}

@@ -1,0 +1,123 @@
+/*
+ * model_format.h
+ *		The binary layout of an affinity.model value, version 1.
+ *
+ * A value is a fixed header, a table of sections, then the sections, each
+ * starting on an 8-byte boundary.  All numbers are little-endian (the
+ * engine refuses to build on a big-endian machine).  Offsets count from the
+ * first byte of the value, whose first four bytes are PostgreSQL's varlena
+ * length word: the engine leaves them alone and the checksum skips them.
+ *
+ * Every way a value enters the server runs aff_model_validate, which checks
+ * the whole layout; serving code then reads it through an AffModelView.
+ */
+#ifndef AFF_MODEL_FORMAT_H
+#define AFF_MODEL_FORMAT_H
+
+#include "aff_core.h"
+
+#define AFF_FORMAT_VERSION	1
+#define AFF_MAGIC			"AFMD"
+
+/* Section kinds. */
+#define AFF_SEC_USER_KEYS		1	/* int64 [n_users], strictly ascending */
+#define AFF_SEC_ITEM_KEYS		2	/* int64 [n_items], strictly ascending */
+#define AFF_SEC_USER_FACTORS	3	/* float [n_users * factors] */
+#define AFF_SEC_ITEM_FACTORS	4	/* float [n_items * factors] */
+#define AFF_SEC_SEEN_PTR		5	/* int64 [n_users + 1] CSR offsets */
+#define AFF_SEC_SEEN_ITEMS		6	/* int32 [nnz] item indices, ascending per user */
+#define AFF_SEC_SEEN_WEIGHTS	7	/* float [nnz] summed training weights */
+#define AFF_SEC_POPULARITY		8	/* float [n_items] distinct training users */
+#define AFF_SEC_LOSS			9	/* double [sweeps] training loss per sweep */
+#define AFF_SEC_SWEEP_SECONDS	10	/* double [sweeps] wall time per sweep */
+#define AFF_SEC_MAX				10
+
+typedef struct AffModelHeader
+{
+	uint32_t	varlena_word;	/* owned by PostgreSQL */
+	char		magic[4];
+	uint16_t	version;
+	uint16_t	method;
+	uint16_t	key_type;
+	uint16_t	n_sections;
+	uint64_t	total_size;		/* bytes of the whole value */
+	uint64_t	checksum;		/* of every byte but the first 4 and this field */
+	uint64_t	fingerprint;	/* of the content without timings: determinism */
+	int64_t		n_users;
+	int64_t		n_items;
+	int64_t		nnz;
+	/* options as used */
+	int32_t		factors;
+	int32_t		iterations;
+	int32_t		solver;
+	int32_t		cg_steps;
+	int32_t		confidence;
+	int32_t		threads;
+	int32_t		min_user_interactions;
+	int32_t		min_item_interactions;
+	int32_t		neighbors;
+	int32_t		max_items;
+	double		regularization;
+	double		alpha;
+	double		epsilon;
+	int64_t		seed;
+	/* input and fit statistics */
+	int64_t		rows_read;
+	int64_t		rows_skipped_null;
+	int64_t		rows_skipped_zero;
+	int64_t		duplicates_summed;
+	int64_t		dropped_users;
+	int64_t		dropped_items;
+	int64_t		dropped_interactions;
+	int64_t		peak_memory;	/* bytes, 0 when not measured */
+	double		fit_seconds;	/* wall time of the final step (not in fingerprint) */
+	int64_t		reserved[6];
+} AffModelHeader;
+
+typedef struct AffSection
+{
+	uint32_t	kind;
+	uint32_t	elem_size;
+	uint64_t	offset;
+	uint64_t	count;
+} AffSection;
+
+/* Read-only view of a validated value; pointers point into its bytes. */
+typedef struct AffModelView
+{
+	const AffModelHeader *h;
+	const int64_t *user_keys;
+	const int64_t *item_keys;
+	const float *user_factors;
+	const float *item_factors;
+	const int64_t *seen_ptr;
+	const int32_t *seen_items;
+	const float *seen_weights;
+	const float *popularity;
+	const double *loss;
+	const double *sweep_seconds;
+	int64_t		n_sweeps;
+} AffModelView;
+
+/* What an encoder is given: header fields filled, arrays by section kind. */
+typedef struct AffModelParts
+{
+	AffModelHeader h;			/* all but magic, sizes, checksums */
+	const void *data[AFF_SEC_MAX + 1];
+	uint64_t	count[AFF_SEC_MAX + 1];
+} AffModelParts;
+
+extern size_t aff_section_elem_size(int kind);
+extern AffStatus aff_model_size(const AffModelParts *parts, uint64_t *size,
+								AffError *err);
+extern void aff_model_write(const AffModelParts *parts, uint8_t *buf,
+							uint64_t size);
+extern AffStatus aff_model_validate(const uint8_t *buf, uint64_t len,
+									AffModelView *view, AffError *err);
+extern AffStatus aff_model_view(const uint8_t *buf, uint64_t len,
+								AffModelView *view, AffError *err);
+extern uint64_t aff_hash(const uint8_t *p, uint64_t n, uint64_t h);
+extern uint64_t aff_model_checksum(const uint8_t *buf, uint64_t len);
+extern const char *aff_method_name(int method);
+
+#endif

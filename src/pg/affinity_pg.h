@@ -1,0 +1,66 @@
+/*
+ * affinity_pg.h
+ *		Declarations shared by the PostgreSQL binding of affinity.
+ *
+ * The binding translates between SQL and the engine in src/core/: options
+ * and GUCs into engine parameters, engine status codes into ereport(),
+ * engine allocations into memory contexts, and model bytes into varlena
+ * values.  It is the only code that calls CHECK_FOR_INTERRUPTS.
+ */
+#ifndef AFFINITY_PG_H
+#define AFFINITY_PG_H
+
+#include "postgres.h"
+#include "fmgr.h"
+#include "utils/jsonb.h"
+
+#include "../core/aff_core.h"
+#include "../core/model_format.h"
+
+/* GUC variables (guc.c) */
+extern int	affinity_threads;
+extern int	affinity_max_threads;
+extern int	affinity_factors;
+extern int	affinity_iterations;
+extern double affinity_regularization;
+extern double affinity_alpha;
+extern int	affinity_max_fit_memory_mb;
+extern bool affinity_verbose;
+
+/* Fit options after merging jsonb, GUCs and built-in defaults (options.c). */
+typedef struct FitOptions
+{
+	int			method;
+	int			factors;
+	int			iterations;
+	int			solver;
+	int			cg_steps;
+	int			confidence;
+	int			threads;		/* resolved: >= 1 */
+	int			min_user_interactions;
+	int			min_item_interactions;
+	int			neighbors;
+	int			max_items;
+	double		regularization;
+	double		alpha;
+	double		epsilon;
+	int64		seed;
+	bool		verbose;
+} FitOptions;
+
+extern void fit_options_parse(Jsonb *options, FitOptions *o);
+extern double method_default_regularization(int method);
+extern int	resolve_threads(int requested);
+
+/* Engine glue (model_io.c) */
+extern AffAllocator context_allocator(MemoryContext cxt);
+extern void report_engine_error(const AffError *err) pg_attribute_noreturn();
+
+/* Model values (model_io.c) */
+extern bytea *model_build(const AffModelParts *parts);
+extern void model_fetch(FunctionCallInfo fcinfo, int argno, AffModelView *view);
+
+/* jsonb assembly (serving.c) */
+extern Jsonb *jsonb_from_cstring(const char *s);
+
+#endif

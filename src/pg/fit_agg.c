@@ -1,0 +1,372 @@
+/*
+ * fit_agg.c
+ *		The affinity.fit aggregate: collect rows, then fit once.
+ *
+ * The transition function appends (user, item, weight) to one compact
+ * array in the aggregate's memory context (huge allocations, so the state
+ * may pass 1 GB), skipping and counting NULL and zero rows and rejecting
+ * negative, NaN and infinite weights.  The final function builds the
+ * sparse matrix, frees the rows, runs the chosen method and encodes the
+ * model.  It keeps the result in the state, because PostgreSQL may call a
+ * final function more than once on one state.
+ */
+#include "affinity_pg.h"
+
+#include <math.h>
+
+#include "miscadmin.h"
+#include "portability/instr_time.h"
+#include "utils/memutils.h"
+
+#include "../core/als.h"
+#include "../core/interactions.h"
+
+typedef struct FitState
+{
+	MemoryContext cxt;			/* the aggregate context */
+	AffTriple  *rows;
+	int64		n_rows;
+	int64		cap_rows;
+	int64		rows_read;
+	int64		rows_null;
+	int64		rows_zero;
+	bool		have_options;
+	FitOptions	opts;
+	bytea	   *result;			/* the model, once finalized */
+} FitState;
+
+/* Grow the row array geometrically; guard the byte count first. */
+static void
+grow_rows(FitState *st)
+{
+	int64		cap = st->cap_rows == 0 ? 1024 : st->cap_rows * 2;
+	Size		bytes;
+
+	if (cap > (int64) (MaxAllocHugeSize / sizeof(AffTriple)))
+		ereport(ERROR,
+				(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
+				 errmsg("too many rows for one affinity.fit"),
+				 errdetail("The fit already holds " INT64_FORMAT " rows.", st->n_rows)));
+	bytes = (Size) cap * sizeof(AffTriple);
+	if (st->rows == NULL)
+		st->rows = MemoryContextAllocHuge(st->cxt, bytes);
+	else
+		st->rows = repalloc_huge(st->rows, bytes);
+	st->cap_rows = cap;
+}
+
+static FitState *
+fit_state_new(FunctionCallInfo fcinfo, MemoryContext aggcxt)
+{
+	FitState   *st = MemoryContextAllocZero(aggcxt, sizeof(FitState));
+	MemoryContext old = MemoryContextSwitchTo(aggcxt);
+
+	st->cxt = aggcxt;
+	if (PG_NARGS() > 4 && !PG_ARGISNULL(4))
+		fit_options_parse(PG_GETARG_JSONB_P(4), &st->opts);
+	else
+		fit_options_parse(NULL, &st->opts);
+	MemoryContextSwitchTo(old);
+	return st;
+}
+
+PG_FUNCTION_INFO_V1(affinity_fit_transfn);
+
+/* (state, user_id, item_id, weight [, options]) -> state */
+Datum
+affinity_fit_transfn(PG_FUNCTION_ARGS)
+{
+	MemoryContext aggcxt;
+	FitState   *st;
+	float4		w;
+
+	if (!AggCheckCallContext(fcinfo, &aggcxt))
+		elog(ERROR, "affinity_fit_transfn called in non-aggregate context");
+	st = PG_ARGISNULL(0) ? fit_state_new(fcinfo, aggcxt) : (FitState *) PG_GETARG_POINTER(0);
+
+	st->rows_read++;
+	if (PG_ARGISNULL(1) || PG_ARGISNULL(2) || PG_ARGISNULL(3))
+	{
+		st->rows_null++;
+		PG_RETURN_POINTER(st);
+	}
+	w = PG_GETARG_FLOAT4(3);
+	if (!(w >= 0) || isinf(w))
+		ereport(ERROR,
+				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
+				 errmsg("affinity.fit weights must be finite and not negative"),
+				 errdetail("User " INT64_FORMAT ", item " INT64_FORMAT " has weight %g.",
+						   PG_GETARG_INT64(1), PG_GETARG_INT64(2), (double) w),
+				 errhint("Filter such rows out, or map them to a weight of zero, which is skipped.")));
+	if (w == 0)
+	{
+		st->rows_zero++;
+		PG_RETURN_POINTER(st);
+	}
+	if (st->n_rows == st->cap_rows)
+		grow_rows(st);
+	st->rows[st->n_rows].user = PG_GETARG_INT64(1);
+	st->rows[st->n_rows].item = PG_GETARG_INT64(2);
+	st->rows[st->n_rows].weight = w;
+	st->n_rows++;
+	PG_RETURN_POINTER(st);
+}
+
+/* Poll callback for the engine: stop when the backend must cancel or die. */
+static int
+poll_interrupts(void *arg)
+{
+	(void) arg;
+	return QueryCancelPending || ProcDiePending;
+}
+
+/* After the engine stopped on a poll: raise the pending cancel. */
+static void
+raise_cancel(void)
+{
+	CHECK_FOR_INTERRUPTS();
+	ereport(ERROR,
+			(errcode(ERRCODE_QUERY_CANCELED),
+			 errmsg("affinity.fit was interrupted")));
+}
+
+/*
+ * Rough peak of the final step, to refuse a fit over
+ * affinity.max_fit_memory before anything large is allocated: the matrix
+ * both ways, the factors and confidences, and the model built twice (it is
+ * copied once by the executor).
+ */
+static double
+estimate_fit_bytes(const FitState *st)
+{
+	double		n = (double) st->n_rows;
+	double		f = st->opts.method == AFF_METHOD_IMPLICIT_ALS ? st->opts.factors : 0;
+	double		entities = 2.0 * n;	/* upper bound on users + items */
+
+	if (entities > 2.0 * AFF_MAX_ENTITIES)
+		entities = 2.0 * AFF_MAX_ENTITIES;
+	return n * sizeof(AffTriple) + n * 16.0 /* dictionaries */
+		+ n * 24.0 + entities * 16.0	/* CSR both ways */
+		+ n * 8.0					/* confidences */
+		+ 3.0 * entities * f * 4.0	/* factors in the fit and two model copies */
+		+ 2.0 * (n * 8.0 + entities * 16.0);	/* training lists in two copies */
+}
+
+static void
+check_memory(const FitState *st)
+{
+	double		need = estimate_fit_bytes(st);
+	double		limit = (double) affinity_max_fit_memory_mb * 1024.0 * 1024.0;
+
+	if (need > limit)
+		ereport(ERROR,
+				(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
+				 errmsg("affinity.fit would need about %.0f MB, over affinity.max_fit_memory",
+						need / (1024.0 * 1024.0)),
+				 errdetail("The fit holds " INT64_FORMAT " rows; affinity.max_fit_memory is %d MB.",
+						   st->n_rows, affinity_max_fit_memory_mb),
+				 errhint("Raise affinity.max_fit_memory, lower factors, or fit on fewer rows.")));
+}
+
+/* Header fields common to every method. */
+static void
+fill_header(AffModelParts *parts, const FitState *st, const AffMatrix *m)
+{
+	AffModelHeader *h = &parts->h;
+	const FitOptions *o = &st->opts;
+
+	memset(parts, 0, sizeof(*parts));
+	h->method = (uint16) o->method;
+	h->key_type = AFF_KEYS_BIGINT;
+	h->n_users = m->n_users;
+	h->n_items = m->n_items;
+	h->nnz = m->nnz;
+	h->factors = o->method == AFF_METHOD_IMPLICIT_ALS ? o->factors : 0;
+	h->iterations = o->iterations;
+	h->solver = o->solver;
+	h->cg_steps = o->cg_steps;
+	h->confidence = o->confidence;
+	h->threads = o->threads;
+	h->min_user_interactions = o->min_user_interactions;
+	h->min_item_interactions = o->min_item_interactions;
+	h->neighbors = o->neighbors;
+	h->max_items = o->max_items;
+	h->regularization = o->regularization;
+	h->alpha = o->alpha;
+	h->epsilon = o->epsilon;
+	h->seed = o->seed;
+	h->rows_read = st->rows_read;
+	h->rows_skipped_null = st->rows_null;
+	h->rows_skipped_zero = st->rows_zero;
+	h->duplicates_summed = m->duplicates_summed;
+	h->dropped_users = m->dropped_users;
+	h->dropped_items = m->dropped_items;
+	h->dropped_interactions = m->dropped_interactions;
+
+	parts->data[AFF_SEC_USER_KEYS] = m->user_keys;
+	parts->count[AFF_SEC_USER_KEYS] = m->n_users;
+	parts->data[AFF_SEC_ITEM_KEYS] = m->item_keys;
+	parts->count[AFF_SEC_ITEM_KEYS] = m->n_items;
+	parts->data[AFF_SEC_SEEN_PTR] = m->row_ptr;
+	parts->count[AFF_SEC_SEEN_PTR] = m->n_users + 1;
+	parts->data[AFF_SEC_SEEN_ITEMS] = m->row_idx;
+	parts->count[AFF_SEC_SEEN_ITEMS] = m->nnz;
+	parts->data[AFF_SEC_SEEN_WEIGHTS] = m->row_val;
+	parts->count[AFF_SEC_SEEN_WEIGHTS] = m->nnz;
+}
+
+/* Item popularity: number of distinct training users. */
+static float *
+item_popularity(const AffMatrix *m)
+{
+	float	   *pop = palloc_extended(sizeof(float) * m->n_items, MCXT_ALLOC_HUGE);
+	int64		i;
+
+	for (i = 0; i < m->n_items; i++)
+		pop[i] = (float) (m->col_ptr[i + 1] - m->col_ptr[i]);
+	return pop;
+}
+
+static double
+seconds_since(instr_time start)
+{
+	instr_time	now;
+
+	INSTR_TIME_SET_CURRENT(now);
+	INSTR_TIME_SUBTRACT(now, start);
+	return INSTR_TIME_GET_DOUBLE(now);
+}
+
+/* Run the ALS sweeps, reporting progress; fills the factor sections. */
+static void
+run_als(const FitState *st, const AffMatrix *m, AffModelParts *parts,
+		AffAllocator *a, AffAls *als)
+{
+	const FitOptions *o = &st->opts;
+	AffAlsParams p;
+	AffError	err;
+	double	   *loss = palloc(sizeof(double) * o->iterations);
+	double	   *secs = palloc(sizeof(double) * o->iterations);
+	double		total = 0;
+	int			s;
+
+	p.factors = o->factors;
+	p.iterations = o->iterations;
+	p.solver = o->solver;
+	p.cg_steps = o->cg_steps;
+	p.confidence = o->confidence;
+	p.threads = o->threads;
+	p.regularization = o->regularization;
+	p.alpha = o->alpha;
+	p.epsilon = o->epsilon;
+	p.seed = (uint64_t) o->seed;
+	if (aff_als_init(als, m, &p, a, &err) != AFF_OK)
+		report_engine_error(&err);
+
+	for (s = 0; s < o->iterations; s++)
+	{
+		instr_time	t0;
+		AffStatus	rc;
+
+		CHECK_FOR_INTERRUPTS();
+		INSTR_TIME_SET_CURRENT(t0);
+		rc = aff_als_sweep(als, &loss[s], poll_interrupts, NULL, &err);
+		if (rc == AFF_ERR_CANCELLED)
+			raise_cancel();
+		if (rc != AFF_OK)
+			report_engine_error(&err);
+		secs[s] = seconds_since(t0);
+		total += secs[s];
+		if (o->verbose)
+			ereport(NOTICE,
+					(errmsg("affinity.fit sweep %d of %d: loss %.6g, %.3f s, about %.1f s left",
+							s + 1, o->iterations, loss[s], secs[s],
+							total / (s + 1) * (o->iterations - s - 1))));
+	}
+	parts->data[AFF_SEC_USER_FACTORS] = als->X;
+	parts->count[AFF_SEC_USER_FACTORS] = (uint64) m->n_users * o->factors;
+	parts->data[AFF_SEC_ITEM_FACTORS] = als->Y;
+	parts->count[AFF_SEC_ITEM_FACTORS] = (uint64) m->n_items * o->factors;
+	parts->data[AFF_SEC_LOSS] = loss;
+	parts->count[AFF_SEC_LOSS] = o->iterations;
+	parts->data[AFF_SEC_SWEEP_SECONDS] = secs;
+	parts->count[AFF_SEC_SWEEP_SECONDS] = o->iterations;
+}
+
+/* The whole final step; returns the model allocated in st->cxt. */
+static bytea *
+fit_model(FitState *st)
+{
+	MemoryContext work = AllocSetContextCreate(CurrentMemoryContext,
+											   "affinity fit",
+											   ALLOCSET_DEFAULT_SIZES);
+	MemoryContext old = MemoryContextSwitchTo(work);
+	AffAllocator a = context_allocator(work);
+	AffMatrix	m;
+	AffAls		als;
+	AffModelParts parts;
+	AffError	err;
+	instr_time	t0;
+	bytea	   *model;
+
+	INSTR_TIME_SET_CURRENT(t0);
+	if (st->opts.method == AFF_METHOD_EASE || st->opts.method == AFF_METHOD_ITEM_KNN)
+		ereport(ERROR,
+				(errcode(ERRCODE_FEATURE_NOT_SUPPORTED),
+				 errmsg("method \"%s\" is not available in this version of affinity",
+						aff_method_name(st->opts.method)),
+				 errhint("Use \"implicit_als\" or \"popularity\".")));
+	check_memory(st);
+
+	if (aff_matrix_build(st->rows, st->n_rows, st->opts.min_user_interactions,
+						 st->opts.min_item_interactions, &a, &m, &err) != AFF_OK)
+		report_engine_error(&err);
+	/* the rows are not needed any more */
+	pfree(st->rows);
+	st->rows = NULL;
+	st->n_rows = st->cap_rows = 0;
+
+	fill_header(&parts, st, &m);
+	parts.data[AFF_SEC_POPULARITY] = item_popularity(&m);
+	parts.count[AFF_SEC_POPULARITY] = m.n_items;
+	if (st->opts.method == AFF_METHOD_IMPLICIT_ALS)
+		run_als(st, &m, &parts, &a, &als);
+	else
+		parts.h.iterations = 0;
+
+	parts.h.fit_seconds = seconds_since(t0);
+	MemoryContextSwitchTo(st->cxt);
+	model = model_build(&parts);
+	MemoryContextSwitchTo(old);
+	MemoryContextDelete(work);
+	return model;
+}
+
+PG_FUNCTION_INFO_V1(affinity_fit_finalfn);
+
+Datum
+affinity_fit_finalfn(PG_FUNCTION_ARGS)
+{
+	FitState   *st;
+
+	if (!AggCheckCallContext(fcinfo, NULL))
+		elog(ERROR, "affinity_fit_finalfn called in non-aggregate context");
+	if (PG_ARGISNULL(0))
+		ereport(ERROR,
+				(errcode(ERRCODE_DATA_EXCEPTION),
+				 errmsg("affinity.fit received no rows"),
+				 errhint("Check the query that feeds the fit; a model needs at least one interaction.")));
+	st = (FitState *) PG_GETARG_POINTER(0);
+	if (st->result == NULL)
+	{
+		if (st->n_rows == 0)
+			ereport(ERROR,
+					(errcode(ERRCODE_DATA_EXCEPTION),
+					 errmsg("affinity.fit received no usable rows"),
+					 errdetail("Of " INT64_FORMAT " rows, " INT64_FORMAT " had a NULL and " INT64_FORMAT " a zero weight.",
+							   st->rows_read, st->rows_null, st->rows_zero),
+					 errhint("A model needs at least one row with a positive weight.")));
+		st->result = fit_model(st);
+	}
+	PG_RETURN_POINTER(st->result);
+}

@@ -1,0 +1,145 @@
+/*
+ * guc.c
+ *		Module load: the affinity.* settings, and affinity.runtime().
+ */
+#include "affinity_pg.h"
+
+#include <cblas.h>
+#include <limits.h>
+#include <unistd.h>
+
+#include "lib/stringinfo.h"
+#include "utils/guc.h"
+#include "utils/json.h"
+
+#include "../core/parallel.h"
+
+PG_MODULE_MAGIC;
+
+void		_PG_init(void);
+
+int			affinity_threads = 0;
+int			affinity_max_threads = 0;
+int			affinity_factors = 64;
+int			affinity_iterations = 15;
+double		affinity_regularization = -1.0;
+double		affinity_alpha = 10.0;
+int			affinity_max_fit_memory_mb = 8192;
+bool		affinity_verbose = false;
+
+void
+_PG_init(void)
+{
+	DefineCustomIntVariable("affinity.threads",
+							"Worker threads for a fit; 0 means all online CPUs.",
+							"Capped by affinity.max_threads.",
+							&affinity_threads, 0, 0, 1024,
+							PGC_USERSET, 0, NULL, NULL, NULL);
+	DefineCustomIntVariable("affinity.max_threads",
+							"Upper bound on worker threads of one fit; 0 means the number of online CPUs.",
+							NULL,
+							&affinity_max_threads, 0, 0, 1024,
+							PGC_SUSET, 0, NULL, NULL, NULL);
+	DefineCustomIntVariable("affinity.factors",
+							"Default latent dimension of implicit_als fits.",
+							NULL,
+							&affinity_factors, 64, 1, AFF_MAX_FACTORS,
+							PGC_USERSET, 0, NULL, NULL, NULL);
+	DefineCustomIntVariable("affinity.iterations",
+							"Default number of alternating sweeps of implicit_als fits.",
+							NULL,
+							&affinity_iterations, 15, 1, 10000,
+							PGC_USERSET, 0, NULL, NULL, NULL);
+	DefineCustomRealVariable("affinity.regularization",
+							 "Default L2 penalty (lambda); -1 means the method's own default.",
+							 NULL,
+							 &affinity_regularization, -1.0, -1.0, 1e12,
+							 PGC_USERSET, 0, NULL, NULL, NULL);
+	DefineCustomRealVariable("affinity.alpha",
+							 "Default confidence scale: c = 1 + alpha * f(w).",
+							 NULL,
+							 &affinity_alpha, 10.0, 0.0, 1e12,
+							 PGC_USERSET, 0, NULL, NULL, NULL);
+	DefineCustomIntVariable("affinity.max_fit_memory",
+							"A fit whose estimated memory exceeds this stops before allocating.",
+							NULL,
+							&affinity_max_fit_memory_mb, 8192, 1, INT_MAX,
+							PGC_USERSET, GUC_UNIT_MB, NULL, NULL, NULL);
+	DefineCustomBoolVariable("affinity.verbose",
+							 "Report each sweep of a fit as a NOTICE.",
+							 NULL,
+							 &affinity_verbose, false,
+							 PGC_USERSET, 0, NULL, NULL, NULL);
+	MarkGUCPrefixReserved("affinity");
+
+	/* BLAS runs single-threaded except inside a fit's Gram products */
+	openblas_set_num_threads(1);
+}
+
+/*
+ * Threads for a fit: 0 means all online CPUs; the result is capped by
+ * affinity.max_threads (0 = online CPUs).
+ */
+int
+resolve_threads(int requested)
+{
+	int			cpus = aff_online_cpus();
+	int			cap = affinity_max_threads > 0 ? affinity_max_threads : cpus;
+	int			n = requested > 0 ? requested : cpus;
+
+	return n > cap ? cap : n;
+}
+
+static void
+append_cpu_features(StringInfo s)
+{
+	const char *names[] = {"sse4.2", "avx", "avx2", "fma", "avx512f"};
+	int			have[5];
+	bool		first = true;
+	int			i;
+
+	__builtin_cpu_init();
+	have[0] = __builtin_cpu_supports("sse4.2");
+	have[1] = __builtin_cpu_supports("avx");
+	have[2] = __builtin_cpu_supports("avx2");
+	have[3] = __builtin_cpu_supports("fma");
+	have[4] = __builtin_cpu_supports("avx512f");
+	appendStringInfoString(s, "[");
+	for (i = 0; i < 5; i++)
+	{
+		if (!have[i])
+			continue;
+		appendStringInfo(s, "%s\"%s\"", first ? "" : ", ", names[i]);
+		first = false;
+	}
+	appendStringInfoString(s, "]");
+}
+
+PG_FUNCTION_INFO_V1(affinity_runtime);
+
+/*
+ * affinity.runtime() -> jsonb: version, BLAS library and the kernel it
+ * chose (a generic kernel on some virtual machines is several times slower),
+ * thread settings and CPU features.
+ */
+Datum
+affinity_runtime(PG_FUNCTION_ARGS)
+{
+	StringInfoData s;
+
+	initStringInfo(&s);
+	appendStringInfo(&s, "{\"version\": \"%s\", \"format_version\": %d, ",
+					 AFFINITY_VERSION, AFF_FORMAT_VERSION);
+	appendStringInfoString(&s, "\"blas\": \"OpenBLAS\", \"blas_core\": ");
+	escape_json(&s, openblas_get_corename());
+	appendStringInfoString(&s, ", \"blas_config\": ");
+	escape_json(&s, openblas_get_config());
+	appendStringInfo(&s, ", \"blas_threads_outside_fits\": %d, ", openblas_get_num_threads());
+	appendStringInfo(&s, "\"online_cpus\": %d, \"threads\": %d, \"max_threads\": %d, "
+					 "\"fit_threads\": %d, \"cpu_features\": ",
+					 aff_online_cpus(), affinity_threads, affinity_max_threads,
+					 resolve_threads(affinity_threads));
+	append_cpu_features(&s);
+	appendStringInfoString(&s, "}");
+	PG_RETURN_JSONB_P(jsonb_from_cstring(s.data));
+}

@@ -1,0 +1,250 @@
+/*
+ * model_io.c
+ *		The affinity.model type: text and binary I/O, building values from
+ *		engine output, and fetching them for the serving functions.
+ *
+ * Text form: base64 of the value's bytes after the varlena length word
+ * (4/3 of the binary size, so a plain pg_dump carries models up to about
+ * 750 MB).  Binary form: the same bytes.  Both ways in run the engine's
+ * full validation.
+ */
+#include "affinity_pg.h"
+
+#include "access/detoast.h"
+#include "common/base64.h"
+#include "libpq/pqformat.h"
+#include "utils/memutils.h"
+
+/* Largest value we build: a varlena holds at most 1 GB. */
+#define MODEL_MAX_BYTES ((uint64) 0x3FFFFFFF)
+
+static void *
+context_alloc(void *ctx, size_t size)
+{
+	return MemoryContextAllocExtended((MemoryContext) ctx, size,
+									  MCXT_ALLOC_HUGE | MCXT_ALLOC_NO_OOM);
+}
+
+static void
+context_release(void *ctx, void *ptr)
+{
+	(void) ctx;
+	pfree(ptr);
+}
+
+/* An engine allocator that allocates in cxt and returns NULL on failure. */
+AffAllocator
+context_allocator(MemoryContext cxt)
+{
+	AffAllocator a;
+
+	a.alloc = context_alloc;
+	a.release = context_release;
+	a.ctx = cxt;
+	return a;
+}
+
+/* Raise the engine's error with the matching SQLSTATE. */
+void
+report_engine_error(const AffError *err)
+{
+	int			code;
+
+	switch (err->status)
+	{
+		case AFF_ERR_NOMEM:
+			code = ERRCODE_OUT_OF_MEMORY;
+			break;
+		case AFF_ERR_CANCELLED:
+			code = ERRCODE_QUERY_CANCELED;
+			break;
+		case AFF_ERR_INVALID:
+			code = ERRCODE_DATA_EXCEPTION;
+			break;
+		case AFF_ERR_CORRUPT:
+			code = ERRCODE_INVALID_BINARY_REPRESENTATION;
+			break;
+		case AFF_ERR_LIMIT:
+			code = ERRCODE_PROGRAM_LIMIT_EXCEEDED;
+			break;
+		case AFF_ERR_NUMERIC:
+			code = ERRCODE_NUMERIC_VALUE_OUT_OF_RANGE;
+			break;
+		default:
+			code = ERRCODE_INTERNAL_ERROR;
+	}
+	ereport(ERROR,
+			(errcode(code),
+			 errmsg("%s", err->msg),
+			 err->detail[0] ? errdetail("%s", err->detail) : 0));
+	pg_unreachable();
+}
+
+/* Encode parts into a new varlena in CurrentMemoryContext. */
+bytea *
+model_build(const AffModelParts *parts)
+{
+	AffError	err;
+	uint64		size;
+	bytea	   *v;
+
+	if (aff_model_size(parts, &size, &err) != AFF_OK)
+		report_engine_error(&err);
+	if (size > MODEL_MAX_BYTES)
+		ereport(ERROR,
+				(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
+				 errmsg("model is too large for one value"),
+				 errdetail("It needs " UINT64_FORMAT " bytes; a value holds at most 1 GB.", size),
+				 errhint("Use fewer factors, or filter rare users and items with min_user_interactions and min_item_interactions.")));
+	v = (bytea *) palloc_extended(size, MCXT_ALLOC_HUGE);
+	aff_model_write(parts, (uint8 *) v, size);
+	SET_VARSIZE(v, size);
+	return v;
+}
+
+/* Copy len bytes after a fresh varlena word and validate the result. */
+static bytea *
+model_from_bytes(const char *data, int len)
+{
+	bytea	   *v;
+	AffModelView view;
+	AffError	err;
+
+	if (len < (int) sizeof(AffModelHeader) - 4)
+		ereport(ERROR,
+				(errcode(ERRCODE_INVALID_BINARY_REPRESENTATION),
+				 errmsg("invalid affinity.model value"),
+				 errdetail("The value has %d bytes, fewer than a model header.", len)));
+	v = (bytea *) palloc(len + 4);
+	SET_VARSIZE(v, len + 4);
+	memcpy((char *) v + 4, data, len);
+	if (aff_model_validate((const uint8 *) v, len + 4, &view, &err) != AFF_OK)
+		report_engine_error(&err);
+	return v;
+}
+
+PG_FUNCTION_INFO_V1(model_in);
+
+Datum
+model_in(PG_FUNCTION_ARGS)
+{
+	char	   *text = PG_GETARG_CSTRING(0);
+	int			tlen = strlen(text);
+	int			cap = pg_b64_dec_len(tlen);
+	char	   *raw = palloc(cap + 1);
+	int			n = pg_b64_decode(text, tlen, raw, cap);
+
+	if (n < 0)
+		ereport(ERROR,
+				(errcode(ERRCODE_INVALID_TEXT_REPRESENTATION),
+				 errmsg("invalid input syntax for type affinity.model"),
+				 errdetail("The text is not valid base64 (%d characters).", tlen),
+				 errhint("A model's text form is what its output gives, for example in pg_dump.")));
+	PG_RETURN_POINTER(model_from_bytes(raw, n));
+}
+
+PG_FUNCTION_INFO_V1(model_out);
+
+Datum
+model_out(PG_FUNCTION_ARGS)
+{
+	bytea	   *v = PG_GETARG_BYTEA_PP(0);
+	int			len = VARSIZE_ANY_EXHDR(v);
+	int			cap = pg_b64_enc_len(len);
+	char	   *out = palloc(cap + 1);
+	int			n = pg_b64_encode(VARDATA_ANY(v), len, out, cap);
+
+	if (n < 0)
+		elog(ERROR, "could not encode affinity.model as base64");
+	out[n] = '\0';
+	PG_RETURN_CSTRING(out);
+}
+
+PG_FUNCTION_INFO_V1(model_recv);
+
+Datum
+model_recv(PG_FUNCTION_ARGS)
+{
+	StringInfo	buf = (StringInfo) PG_GETARG_POINTER(0);
+	int			len = buf->len - buf->cursor;
+	const char *data = pq_getmsgbytes(buf, len);
+	bytea	   *v = model_from_bytes(data, len);
+
+	pq_getmsgend(buf);
+	PG_RETURN_POINTER(v);
+}
+
+PG_FUNCTION_INFO_V1(model_send);
+
+Datum
+model_send(PG_FUNCTION_ARGS)
+{
+	bytea	   *v = PG_GETARG_BYTEA_PP(0);
+	StringInfoData buf;
+
+	pq_begintypsend(&buf);
+	pq_sendbytes(&buf, VARDATA_ANY(v), VARSIZE_ANY_EXHDR(v));
+	PG_RETURN_BYTEA_P(pq_endtypsend(&buf));
+}
+
+/*
+ * Per-query cache of one detoasted model, in fn_extra: a LATERAL call per
+ * row reads a stored model once, not once per row.  Keyed by the TOAST
+ * pointer, which names one immutable stored value.
+ */
+typedef struct FetchCache
+{
+	Oid			toastrelid;
+	Oid			valueid;
+	int32		rawsize;
+	bytea	   *value;
+} FetchCache;
+
+/* Detoast argument argno, align it, and view it (structural checks). */
+void
+model_fetch(FunctionCallInfo fcinfo, int argno, AffModelView *view)
+{
+	struct varlena *raw = (struct varlena *) PG_GETARG_RAW_VARLENA_P(argno);
+	FetchCache *cache = (FetchCache *) fcinfo->flinfo->fn_extra;
+	struct varlena *v;
+	AffError	err;
+
+	if (VARATT_IS_EXTERNAL_ONDISK(raw))
+	{
+		struct varatt_external ptr;
+
+		VARATT_EXTERNAL_GET_POINTER(ptr, raw);
+		if (cache == NULL)
+		{
+			cache = MemoryContextAllocZero(fcinfo->flinfo->fn_mcxt, sizeof(FetchCache));
+			fcinfo->flinfo->fn_extra = cache;
+		}
+		if (cache->value == NULL || cache->toastrelid != ptr.va_toastrelid ||
+			cache->valueid != ptr.va_valueid || cache->rawsize != ptr.va_rawsize)
+		{
+			MemoryContext old = MemoryContextSwitchTo(fcinfo->flinfo->fn_mcxt);
+
+			if (cache->value != NULL)
+				pfree(cache->value);
+			cache->value = NULL;
+			cache->value = (bytea *) detoast_attr(raw);
+			cache->toastrelid = ptr.va_toastrelid;
+			cache->valueid = ptr.va_valueid;
+			cache->rawsize = ptr.va_rawsize;
+			MemoryContextSwitchTo(old);
+		}
+		v = (struct varlena *) cache->value;
+	}
+	else
+		v = (struct varlena *) PG_DETOAST_DATUM(PointerGetDatum(raw));
+
+	if (((uintptr_t) v & 7) != 0)
+	{
+		struct varlena *copy = palloc(VARSIZE(v));
+
+		memcpy(copy, v, VARSIZE(v));
+		v = copy;
+	}
+	if (aff_model_view((const uint8 *) v, VARSIZE(v), view, &err) != AFF_OK)
+		report_engine_error(&err);
+}
