@@ -238,8 +238,13 @@ aff_matrix_build(AffTriple *rows, int64_t n_rows, int min_user, int min_item,
 	aff_release(a, items);
 
 	if (n == 0)
-		return aff_fail(err, AFF_ERR_INVALID,
-						"no interactions are left after the minimum-interaction filters");
+	{
+		aff_fail(err, AFF_ERR_INVALID,
+				 "no interactions are left after the minimum-interaction filters");
+		return aff_detail(err, "min_user_interactions is %d and min_item_interactions is %d; %lld users and %lld items were dropped.",
+						  min_user, min_item, (long long) m->dropped_users,
+						  (long long) m->dropped_items);
+	}
 
 	/* distinct users and items of the kept rows */
 	m->nnz = n;

@@ -428,8 +428,7 @@ aff_model_validate(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *
 	if (aff_model_checksum(buf, len) != v->h->checksum)
 	{
 		aff_fail(err, AFF_ERR_CORRUPT, "affinity.model checksum mismatch");
-		return aff_detail(err, "The value's bytes do not match its checksum %016llx; it was damaged or altered.",
-						  (unsigned long long) v->h->checksum);
+		return aff_detail(err, "The value's bytes do not match the checksum in its header; it was damaged or altered.");
 	}
 	return check_content(v, err);
 }

@@ -131,31 +131,30 @@ raise_cancel(void)
 }
 
 /*
- * Rough peak of the final step, to refuse a fit over
- * affinity.max_fit_memory before anything large is allocated: the matrix
- * both ways, the factors and confidences, and the model built twice (it is
- * copied once by the executor).
+ * Peak memory of the final step, to refuse a fit over
+ * affinity.max_fit_memory before anything large is allocated: the rows, the
+ * matrix both ways with its dictionaries and confidences, the factors, and
+ * the model built twice (the executor copies it once).  Before the matrix
+ * exists, users and items are bounded by the row count; afterwards the
+ * exact counts are used.
  */
 static double
-estimate_fit_bytes(const FitState *st)
+estimate_fit_bytes(const FitState *st, double n_rows, double users, double items)
 {
-	double		n = (double) st->n_rows;
 	double		f = st->opts.method == AFF_METHOD_IMPLICIT_ALS ? st->opts.factors : 0;
-	double		entities = 2.0 * n;	/* upper bound on users + items */
+	double		entities = users + items;
 
-	if (entities > 2.0 * AFF_MAX_ENTITIES)
-		entities = 2.0 * AFF_MAX_ENTITIES;
-	return n * sizeof(AffTriple) + n * 16.0 /* dictionaries */
-		+ n * 24.0 + entities * 16.0	/* CSR both ways */
-		+ n * 8.0					/* confidences */
+	return n_rows * sizeof(AffTriple) * 1.5	/* rows and sort scratch */
+		+ n_rows * 32.0 + entities * 24.0	/* CSR both ways, dictionaries */
+		+ n_rows * 8.0				/* confidences */
 		+ 3.0 * entities * f * 4.0	/* factors in the fit and two model copies */
-		+ 2.0 * (n * 8.0 + entities * 16.0);	/* training lists in two copies */
+		+ 2.0 * (n_rows * 8.0 + entities * 16.0);	/* training lists in two copies */
 }
 
 static void
-check_memory(const FitState *st)
+check_memory(const FitState *st, double n_rows, double users, double items)
 {
-	double		need = estimate_fit_bytes(st);
+	double		need = estimate_fit_bytes(st, n_rows, users, items);
 	double		limit = (double) affinity_max_fit_memory_mb * 1024.0 * 1024.0;
 
 	if (need > limit)
@@ -163,8 +162,8 @@ check_memory(const FitState *st)
 				(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
 				 errmsg("affinity.fit would need about %.0f MB, over affinity.max_fit_memory",
 						need / (1024.0 * 1024.0)),
-				 errdetail("The fit holds " INT64_FORMAT " rows; affinity.max_fit_memory is %d MB.",
-						   st->n_rows, affinity_max_fit_memory_mb),
+				 errdetail("The fit holds %.0f interactions of at most %.0f users and %.0f items; affinity.max_fit_memory is %d MB.",
+						   n_rows, users, items, affinity_max_fit_memory_mb),
 				 errhint("Raise affinity.max_fit_memory, lower factors, or fit on fewer rows.")));
 }
 
@@ -316,11 +315,13 @@ fit_model(FitState *st)
 				 errmsg("method \"%s\" is not available in this version of affinity",
 						aff_method_name(st->opts.method)),
 				 errhint("Use \"implicit_als\" or \"popularity\".")));
-	check_memory(st);
-
+	/* users and items are at most the rows until the matrix says */
+	check_memory(st, st->n_rows, Min(st->n_rows, AFF_MAX_ENTITIES),
+				 Min(st->n_rows, AFF_MAX_ENTITIES));
 	if (aff_matrix_build(st->rows, st->n_rows, st->opts.min_user_interactions,
 						 st->opts.min_item_interactions, &a, &m, &err) != AFF_OK)
 		report_engine_error(&err);
+	check_memory(st, m.nnz, m.n_users, m.n_items);
 	/* the rows are not needed any more */
 	pfree(st->rows);
 	st->rows = NULL;

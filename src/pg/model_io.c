@@ -10,6 +10,8 @@
  */
 #include "affinity_pg.h"
 
+#include <ctype.h>
+
 #include "access/detoast.h"
 #include "common/base64.h"
 #include "libpq/pqformat.h"
@@ -128,11 +130,22 @@ PG_FUNCTION_INFO_V1(model_in);
 Datum
 model_in(PG_FUNCTION_ARGS)
 {
-	char	   *text = PG_GETARG_CSTRING(0);
-	int			tlen = strlen(text);
-	int			cap = pg_b64_dec_len(tlen);
-	char	   *raw = palloc(cap + 1);
-	int			n = pg_b64_decode(text, tlen, raw, cap);
+	char	   *in = PG_GETARG_CSTRING(0);
+	char	   *text = palloc(strlen(in) + 1);
+	int			tlen = 0;
+	int			cap;
+	char	   *raw;
+	int			n;
+	char	   *c;
+
+	/* line breaks and blanks, as wrapped base64 has, are ignored */
+	for (c = in; *c; c++)
+		if (!isspace((unsigned char) *c))
+			text[tlen++] = *c;
+	text[tlen] = '\0';
+	cap = pg_b64_dec_len(tlen);
+	raw = palloc(cap + 1);
+	n = pg_b64_decode(text, tlen, raw, cap);
 
 	if (n < 0)
 		ereport(ERROR,

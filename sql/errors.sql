@@ -1,0 +1,53 @@
+--
+-- Bad input: each error says what is wrong, names the value, and loses
+-- nothing.
+--
+CREATE TABLE err_buys AS
+SELECT u AS user_id, i AS item_id, 1::real AS weight
+FROM generate_series(1, 10) u, generate_series(1, 6) i;
+CREATE TABLE err_model AS
+SELECT affinity.fit(user_id, item_id, weight, '{"factors": 2, "iterations": 2}') AS model FROM err_buys;
+
+-- weights
+SELECT affinity.fit(u, i, w) FROM (VALUES (1::bigint, 2::bigint, -1::real)) v(u, i, w);
+SELECT affinity.fit(u, i, w) FROM (VALUES (3::bigint, 4::bigint, 'NaN'::real)) v(u, i, w);
+SELECT affinity.fit(u, i, w) FROM (VALUES (5::bigint, 6::bigint, 'Infinity'::real)) v(u, i, w);
+SELECT affinity.fit(u, i, w) FROM (VALUES (1::bigint, 1::bigint, 3e38::real), (1, 1, 3e38)) v(u, i, w);
+
+-- empty and unusable input
+SELECT affinity.fit(user_id, item_id, weight) FROM err_buys WHERE false;
+SELECT affinity.fit(u, i, w) FROM (VALUES (1::bigint, 2::bigint, 0::real), (NULL, 3, 1)) v(u, i, w);
+SELECT affinity.fit(user_id, item_id, weight, '{"min_user_interactions": 100}') FROM err_buys;
+
+-- options
+SELECT affinity.fit(user_id, item_id, weight, '{"factor": 8}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"factors": 0}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"factors": 2.5}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"factors": "many"}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"iterations": -1}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"regularization": 0}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"alpha": -2}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"solver": "qr"}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"confidence": "square"}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"method": "magic"}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"method": "ease"}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"verbose": "yes"}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"seed": {"a": 1}}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '[1, 2]') FROM err_buys;
+SET affinity.factors = 0;
+SET affinity.no_such_setting = 1;
+
+-- memory guard
+SET affinity.max_fit_memory = 1;
+SELECT affinity.fit(u, i, 1) FROM generate_series(1, 300) u, generate_series(1, 100) i;
+RESET affinity.max_fit_memory;
+
+-- serving arguments
+SELECT * FROM err_model, affinity.top_items(model, 1, -1);
+SELECT * FROM err_model, affinity.top_items(model, 1, NULL);
+SELECT * FROM err_model, affinity.top_items(model, 1, 5, exclude_seen => NULL);
+SELECT * FROM err_model, affinity.items_like(model, 1, -3);
+
+-- the table is intact after all of that
+SELECT count(*) FROM err_buys;
+SELECT affinity.describe(model)->'users' FROM err_model;

@@ -1,0 +1,108 @@
+--
+-- affinity.fit: input handling, statistics, options, determinism, methods.
+--
+SET extra_float_digits = 0;
+
+CREATE TABLE fit_buys AS
+SELECT u::bigint AS user_id,
+       (CASE WHEN u <= 30 THEN 0 ELSE 12 END + i)::bigint AS item_id,
+       (1 + (u * i) % 3)::real AS weight
+FROM generate_series(1, 60) u, generate_series(1, 12) i
+WHERE abs(hashint4(u * 1000 + i)) % 100 < 55;
+
+SELECT count(*) AS rows, count(DISTINCT user_id) AS users,
+       count(DISTINCT item_id) AS items FROM fit_buys;
+
+-- counts, with NULL rows, zero weights and duplicates added to the input
+CREATE TABLE fit_input AS
+SELECT * FROM fit_buys
+UNION ALL SELECT NULL, 1, 1
+UNION ALL SELECT 1, NULL, 1
+UNION ALL SELECT 1, 1, NULL
+UNION ALL SELECT 2, 5, 0
+UNION ALL SELECT user_id, item_id, 1 FROM fit_buys WHERE user_id <= 3;
+
+CREATE TABLE fit_models AS
+SELECT affinity.fit(user_id, item_id, weight,
+                    '{"factors": 8, "iterations": 6, "threads": 1}') AS model
+FROM fit_input;
+
+SELECT d->>'method' AS method, d->'users' AS users, d->'items' AS items,
+       d->'interactions' AS interactions, d->'rows_read' AS rows_read,
+       d->'rows_skipped_null' AS nulls, d->'rows_skipped_zero' AS zeros,
+       d->'duplicates_summed' AS duplicates, jsonb_array_length(d->'loss') AS sweeps
+FROM (SELECT affinity.describe(model) AS d FROM fit_models) s;
+
+-- options as used
+SELECT affinity.describe(model)->'options' AS options FROM fit_models;
+
+-- the loss falls every sweep (conjugate gradient lowers each row's objective)
+SELECT bool_and((l.value)::float8 <= (p.value)::float8) AS loss_falls
+FROM fit_models,
+     jsonb_array_elements(affinity.describe(model)->'loss') WITH ORDINALITY l(value, n),
+     jsonb_array_elements(affinity.describe(model)->'loss') WITH ORDINALITY p(value, n)
+WHERE l.n = p.n + 1;
+
+-- duplicates are summed: user 1's weight for an item it bought twice
+SELECT affinity.score(model, 1, 1) IS NOT NULL AS known FROM fit_models;
+
+-- determinism: same rows, options and seed give the same model content
+SELECT a = b AS same_fingerprint FROM
+  (SELECT affinity.describe(affinity.fit(user_id, item_id, weight,
+          '{"factors": 8, "iterations": 4, "threads": 1}'))->>'fingerprint' AS a FROM fit_buys) x,
+  (SELECT affinity.describe(affinity.fit(user_id, item_id, weight,
+          '{"factors": 8, "iterations": 4, "threads": 1}'))->>'fingerprint' AS b FROM fit_buys) y;
+SELECT a <> b AS other_seed_differs FROM
+  (SELECT affinity.describe(affinity.fit(user_id, item_id, weight,
+          '{"factors": 8, "iterations": 4, "threads": 1}'))->>'fingerprint' AS a FROM fit_buys) x,
+  (SELECT affinity.describe(affinity.fit(user_id, item_id, weight,
+          '{"factors": 8, "iterations": 4, "threads": 1, "seed": 7}'))->>'fingerprint' AS b FROM fit_buys) y;
+
+-- the thread count does not change the factors (each row is solved alone)
+SELECT bool_and(a.vector = b.vector) AS threads_agree FROM
+  (SELECT (affinity.user_vectors(m)).* FROM
+     (SELECT affinity.fit(user_id, item_id, weight, '{"factors": 8, "iterations": 3, "threads": 1}') m FROM fit_buys) s) a
+  JOIN
+  (SELECT (affinity.user_vectors(m)).* FROM
+     (SELECT affinity.fit(user_id, item_id, weight, '{"factors": 8, "iterations": 3, "threads": 2}') m FROM fit_buys) s) b
+  USING (user_id);
+
+-- the exact solver
+SELECT affinity.describe(affinity.fit(user_id, item_id, weight,
+         '{"factors": 4, "iterations": 3, "solver": "cholesky", "confidence": "linear", "alpha": 2, "threads": 1}'))->'options'
+FROM fit_buys;
+
+-- GUCs give the defaults of options left out
+SET affinity.factors = 6;
+SET affinity.iterations = 2;
+SET affinity.alpha = 3.5;
+SET affinity.regularization = 0.25;
+SELECT o->'factors' AS factors, o->'iterations' AS iterations, o->'alpha' AS alpha,
+       o->'regularization' AS regularization
+FROM (SELECT affinity.describe(affinity.fit(user_id, item_id, weight))->'options' AS o FROM fit_buys) s;
+RESET affinity.factors;
+RESET affinity.iterations;
+RESET affinity.alpha;
+RESET affinity.regularization;
+
+-- minimum interactions: users with fewer than 8 distinct items are dropped
+SELECT d->'users' AS users, d->'dropped_users' AS dropped_users,
+       d->'dropped_interactions' AS dropped_interactions
+FROM (SELECT affinity.describe(affinity.fit(user_id, item_id, weight,
+        '{"factors": 4, "iterations": 2, "min_user_interactions": 8}')) AS d FROM fit_buys) s;
+SELECT count(*) AS users_with_8_or_more
+FROM (SELECT user_id FROM fit_buys GROUP BY user_id HAVING count(*) >= 8) s;
+
+-- one model per group
+SELECT user_id <= 30 AS first_group,
+       affinity.describe(affinity.fit(user_id, item_id, weight, '{"factors": 4, "iterations": 2}'))->'items' AS items
+FROM fit_buys GROUP BY user_id <= 30 ORDER BY 1;
+
+-- popularity: counts of distinct users per item
+CREATE TABLE fit_pop AS
+SELECT affinity.fit(user_id, item_id, weight, '{"method": "popularity"}') AS model FROM fit_buys;
+SELECT d->>'method' AS method, d->'loss' AS loss, d->'options' AS options
+FROM (SELECT affinity.describe(model) AS d FROM fit_pop) s;
+SELECT t.item_id, t.score, t.rank,
+       (SELECT count(DISTINCT user_id) FROM fit_buys b WHERE b.item_id = t.item_id) AS buyers
+FROM fit_pop, affinity.top_items(model, 999, 5) t ORDER BY t.rank;
