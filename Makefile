@@ -12,7 +12,8 @@ OBJS = \
 	src/pg/options.o \
 	src/pg/model_io.o \
 	src/pg/fit_agg.o \
-	src/pg/serving.o
+	src/pg/serving.o \
+	src/pg/weights.o
 
 EXTENSION = affinity
 EXTVERSION = 1.0

@@ -30,6 +30,7 @@ aff_section_elem_size(int kind)
 		case AFF_SEC_USER_KEYS:
 		case AFF_SEC_ITEM_KEYS:
 		case AFF_SEC_SEEN_PTR:
+		case AFF_SEC_NEIGHBOR_PTR:
 		case AFF_SEC_LOSS:
 		case AFF_SEC_SWEEP_SECONDS:
 			return 8;
@@ -38,6 +39,9 @@ aff_section_elem_size(int kind)
 		case AFF_SEC_SEEN_ITEMS:
 		case AFF_SEC_SEEN_WEIGHTS:
 		case AFF_SEC_POPULARITY:
+		case AFF_SEC_ITEM_WEIGHTS:
+		case AFF_SEC_NEIGHBOR_IDX:
+		case AFF_SEC_NEIGHBOR_SIM:
 			return 4;
 	}
 	return 0;
@@ -269,7 +273,7 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 		cnt[s->kind] = s->count;
 	}
 
-	if (h->method != AFF_METHOD_IMPLICIT_ALS && h->method != AFF_METHOD_POPULARITY)
+	if (h->method < AFF_METHOD_IMPLICIT_ALS || h->method > AFF_METHOD_ITEM_KNN)
 		return corrupt(err, "Unknown method code %llu.", h->method, 0);
 	if (h->key_type != AFF_KEYS_BIGINT)
 		return corrupt(err, "Unknown key type code %llu.", h->key_type, 0);
@@ -307,7 +311,23 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 						   cnt[AFF_SEC_USER_FACTORS], cnt[AFF_SEC_ITEM_FACTORS]);
 	}
 
+	if (h->method == AFF_METHOD_EASE &&
+		(!sec[AFF_SEC_ITEM_WEIGHTS] ||
+		 cnt[AFF_SEC_ITEM_WEIGHTS] != (uint64_t) h->n_items * (uint64_t) h->n_items))
+		return corrupt(err, "The item weight matrix is missing or holds %llu numbers for %llu items.",
+					   cnt[AFF_SEC_ITEM_WEIGHTS], (uint64_t) h->n_items);
+	if (h->method == AFF_METHOD_ITEM_KNN &&
+		(!sec[AFF_SEC_NEIGHBOR_PTR] || !sec[AFF_SEC_NEIGHBOR_IDX] || !sec[AFF_SEC_NEIGHBOR_SIM] ||
+		 cnt[AFF_SEC_NEIGHBOR_PTR] != (uint64_t) h->n_items + 1 ||
+		 cnt[AFF_SEC_NEIGHBOR_IDX] != cnt[AFF_SEC_NEIGHBOR_SIM]))
+		return corrupt(err, "Neighbour lists are missing or hold %llu offsets for %llu items.",
+					   cnt[AFF_SEC_NEIGHBOR_PTR], (uint64_t) h->n_items);
+
 	v->h = h;
+	v->item_weights = sec[AFF_SEC_ITEM_WEIGHTS];
+	v->neighbor_ptr = sec[AFF_SEC_NEIGHBOR_PTR];
+	v->neighbor_idx = sec[AFF_SEC_NEIGHBOR_IDX];
+	v->neighbor_sim = sec[AFF_SEC_NEIGHBOR_SIM];
 	v->user_keys = sec[AFF_SEC_USER_KEYS];
 	v->item_keys = sec[AFF_SEC_ITEM_KEYS];
 	v->user_factors = sec[AFF_SEC_USER_FACTORS];
@@ -319,6 +339,7 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 	v->loss = sec[AFF_SEC_LOSS];
 	v->sweep_seconds = sec[AFF_SEC_SWEEP_SECONDS];
 	v->n_sweeps = (int64_t) cnt[AFF_SEC_LOSS];
+	v->neighbor_count = cnt[AFF_SEC_NEIGHBOR_IDX];
 	return AFF_OK;
 }
 
@@ -413,6 +434,36 @@ check_content(const AffModelView *v, AffError *err)
 		if ((bad = first_non_finite_f(v->item_factors, f * h->n_items)) >= 0)
 			return corrupt(err, "Item factor %llu of item index %llu is not finite.",
 						   (uint64_t) bad % f, (uint64_t) bad / f);
+	}
+	if (h->method == AFF_METHOD_EASE)
+	{
+		uint64_t	n = (uint64_t) h->n_items * (uint64_t) h->n_items;
+
+		if ((bad = first_non_finite_f(v->item_weights, n)) >= 0)
+			return corrupt(err, "Item weight %llu of item index %llu is not finite.",
+						   (uint64_t) bad % h->n_items, (uint64_t) bad / h->n_items);
+	}
+	if (h->method == AFF_METHOD_ITEM_KNN)
+	{
+		int64_t		total = (int64_t) (v->neighbor_ptr[h->n_items]);
+
+		if (v->neighbor_ptr[0] != 0 || total < 0 ||
+			(uint64_t) total != v->neighbor_count)
+			return corrupt(err, "Neighbour offsets run from %llu to %llu.",
+						   (uint64_t) v->neighbor_ptr[0], (uint64_t) total);
+		for (j = 0; j < h->n_items; j++)
+		{
+			int64_t		k;
+
+			if (v->neighbor_ptr[j + 1] < v->neighbor_ptr[j])
+				return corrupt(err, "Neighbour offsets decrease at item index %llu.",
+							   (uint64_t) j, 0);
+			for (k = v->neighbor_ptr[j]; k < v->neighbor_ptr[j + 1]; k++)
+				if (v->neighbor_idx[k] < 0 || v->neighbor_idx[k] >= h->n_items ||
+					v->neighbor_idx[k] == j || !isfinite(v->neighbor_sim[k]))
+					return corrupt(err, "Neighbour %llu of item index %llu is out of range or not finite.",
+								   (uint64_t) k, (uint64_t) j);
+		}
 	}
 	return check_options(h, err);
 }

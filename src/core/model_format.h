@@ -30,7 +30,11 @@
 #define AFF_SEC_POPULARITY		8	/* float [n_items] distinct training users */
 #define AFF_SEC_LOSS			9	/* double [sweeps] training loss per sweep */
 #define AFF_SEC_SWEEP_SECONDS	10	/* double [sweeps] wall time per sweep */
-#define AFF_SEC_MAX				10
+#define AFF_SEC_ITEM_WEIGHTS	11	/* float [n_items * n_items] row-major B (ease) */
+#define AFF_SEC_NEIGHBOR_PTR	12	/* int64 [n_items + 1] CSR offsets (item_knn) */
+#define AFF_SEC_NEIGHBOR_IDX	13	/* int32 [neighbor count] item indices */
+#define AFF_SEC_NEIGHBOR_SIM	14	/* float [neighbor count] similarities */
+#define AFF_SEC_MAX				14
 
 typedef struct AffModelHeader
 {
@@ -97,6 +101,11 @@ typedef struct AffModelView
 	const double *loss;
 	const double *sweep_seconds;
 	int64_t		n_sweeps;
+	const float *item_weights;	/* ease: B[i * n_items + j] */
+	const int64_t *neighbor_ptr;	/* item_knn: neighbours of item i are */
+	const int32_t *neighbor_idx;	/* neighbor_idx[neighbor_ptr[i] .. */
+	const float *neighbor_sim;	/* neighbor_ptr[i + 1]) */
+	uint64_t	neighbor_count;
 } AffModelView;
 
 /* What an encoder is given: header fields filled, arrays by section kind. */

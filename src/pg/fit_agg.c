@@ -20,6 +20,7 @@
 
 #include "../core/als.h"
 #include "../core/interactions.h"
+#include "weights.h"
 
 typedef struct FitState
 {
@@ -309,12 +310,6 @@ fit_model(FitState *st)
 	bytea	   *model;
 
 	INSTR_TIME_SET_CURRENT(t0);
-	if (st->opts.method == AFF_METHOD_EASE || st->opts.method == AFF_METHOD_ITEM_KNN)
-		ereport(ERROR,
-				(errcode(ERRCODE_FEATURE_NOT_SUPPORTED),
-				 errmsg("method \"%s\" is not available in this version of affinity",
-						aff_method_name(st->opts.method)),
-				 errhint("Use \"implicit_als\" or \"popularity\".")));
 	/* users and items are at most the rows until the matrix says */
 	check_memory(st, st->n_rows, Min(st->n_rows, AFF_MAX_ENTITIES),
 				 Min(st->n_rows, AFF_MAX_ENTITIES));
@@ -330,10 +325,23 @@ fit_model(FitState *st)
 	fill_header(&parts, st, &m);
 	parts.data[AFF_SEC_POPULARITY] = item_popularity(&m);
 	parts.count[AFF_SEC_POPULARITY] = m.n_items;
-	if (st->opts.method == AFF_METHOD_IMPLICIT_ALS)
-		run_als(st, &m, &parts, &a, &als);
-	else
-		parts.h.iterations = 0;
+	switch (st->opts.method)
+	{
+		case AFF_METHOD_IMPLICIT_ALS:
+			run_als(st, &m, &parts, &a, &als);
+			break;
+		case AFF_METHOD_EASE:
+			parts.h.iterations = 0;
+			fit_ease(&m, &st->opts, &a, &parts);
+			break;
+		case AFF_METHOD_ITEM_KNN:
+			parts.h.iterations = 0;
+			fit_item_knn(&m, &st->opts, &a, &parts);
+			break;
+		default:
+			parts.h.iterations = 0;
+			break;
+	}
 
 	parts.h.fit_seconds = seconds_since(t0);
 	MemoryContextSwitchTo(st->cxt);

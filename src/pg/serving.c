@@ -27,6 +27,7 @@
 
 #include "../core/interactions.h"
 #include "../core/topk.h"
+#include "weights.h"
 
 Jsonb *
 jsonb_from_cstring(const char *s)
