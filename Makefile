@@ -8,11 +8,17 @@ OBJS = \
 	src/core/als.o \
 	src/core/topk.o \
 	src/core/model_format.o \
+	src/core/ease.o \
+	src/core/knn.o \
 	src/pg/guc.o \
 	src/pg/options.o \
 	src/pg/model_io.o \
+	src/pg/model_cache.o \
 	src/pg/fit_agg.o \
+	src/pg/serving_common.o \
 	src/pg/serving.o \
+	src/pg/batch.o \
+	src/pg/inspect.o \
 	src/pg/weights.o
 
 EXTENSION = affinity
@@ -20,7 +26,7 @@ EXTVERSION = 1.0
 DATA = src/affinity--1.0.sql
 PGFILEDESC = "affinity - recommendation models in SQL"
 
-REGRESS = type fit serving errors
+REGRESS = type fit serving batch errors
 REGRESS_OPTS = --inputdir=. --outputdir=. --load-extension=affinity
 
 BLAS_CFLAGS := $(shell pkg-config --cflags openblas 2>/dev/null)

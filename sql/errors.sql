@@ -30,7 +30,7 @@ SELECT affinity.fit(user_id, item_id, weight, '{"alpha": -2}') FROM err_buys;
 SELECT affinity.fit(user_id, item_id, weight, '{"solver": "qr"}') FROM err_buys;
 SELECT affinity.fit(user_id, item_id, weight, '{"confidence": "square"}') FROM err_buys;
 SELECT affinity.fit(user_id, item_id, weight, '{"method": "magic"}') FROM err_buys;
-SELECT affinity.fit(user_id, item_id, weight, '{"method": "ease"}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"method": "ease", "max_items": 3}') FROM err_buys;
 SELECT affinity.fit(user_id, item_id, weight, '{"verbose": "yes"}') FROM err_buys;
 SELECT affinity.fit(user_id, item_id, weight, '{"seed": {"a": 1}}') FROM err_buys;
 SELECT affinity.fit(user_id, item_id, weight, '[1, 2]') FROM err_buys;

@@ -64,6 +64,33 @@ CREATE FUNCTION affinity.top_items(model affinity.model, user_id bigint, k integ
 	COST 1000 ROWS 10;
 COMMENT ON FUNCTION affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean) IS 'the k best items for a known user';
 
+CREATE FUNCTION affinity.top_items(model affinity.model, basket bigint[], k integer DEFAULT 10,
+		weights real[] DEFAULT NULL, exclude_seen boolean DEFAULT true,
+		exclude bigint[] DEFAULT NULL, candidates bigint[] DEFAULT NULL)
+	RETURNS TABLE (item_id bigint, score real, rank integer)
+	AS 'MODULE_PATHNAME', 'top_items_basket' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	COST 1000 ROWS 10;
+COMMENT ON FUNCTION affinity.top_items(affinity.model, bigint[], integer, real[], boolean, bigint[], bigint[]) IS 'the k best items for a basket of items (a user the model has not seen)';
+
+CREATE FUNCTION affinity.top_items_for_all(model affinity.model, k integer DEFAULT 10,
+		exclude_seen boolean DEFAULT true, users bigint[] DEFAULT NULL)
+	RETURNS TABLE (user_id bigint, item_id bigint, score real, rank integer)
+	AS 'MODULE_PATHNAME', 'top_items_for_all' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	COST 100000 ROWS 100000;
+COMMENT ON FUNCTION affinity.top_items_for_all(affinity.model, integer, boolean, bigint[]) IS 'the k best items for every user of the model (or the given users), in blocks';
+
+CREATE FUNCTION affinity.users_like(model affinity.model, user_id bigint, k integer DEFAULT 10)
+	RETURNS TABLE (user_id bigint, similarity real, rank integer)
+	AS 'MODULE_PATHNAME', 'users_like' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	COST 1000 ROWS 10;
+COMMENT ON FUNCTION affinity.users_like(affinity.model, bigint, integer) IS 'the k users nearest to a user by cosine of their factors';
+
+CREATE FUNCTION affinity.reasons(model affinity.model, user_id bigint, item_id bigint, k integer DEFAULT 5)
+	RETURNS TABLE (past_item_id bigint, contribution real, rank integer)
+	AS 'MODULE_PATHNAME', 'reasons' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	COST 1000 ROWS 5;
+COMMENT ON FUNCTION affinity.reasons(affinity.model, bigint, bigint, integer) IS 'which training items of the user push this item up, and by how much';
+
 CREATE FUNCTION affinity.items_like(model affinity.model, item_id bigint, k integer DEFAULT 10,
 		candidates bigint[] DEFAULT NULL)
 	RETURNS TABLE (item_id bigint, similarity real, rank integer)

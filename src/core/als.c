@@ -97,27 +97,25 @@ aff_solve_scratch_len(int f)
 }
 
 /*
- * Exact solve by Cholesky of A = G + lambda I + sum (c-1) y y^T with
- * b = sum c y.  Returns 0 when A is not positive definite.
+ * Lower triangle of A = G + lambda I + sum (c-1) y y^T into A (f x f), and
+ * b = sum c y into b when b is not NULL.
  */
-static int
-solve_cholesky(const float *F, const double *G, int f, double lambda,
-			   const int32_t *idx, const float *conf, int64_t len,
-			   double *x, double *scratch)
+static void
+build_system(const float *F, const double *G, int f, double lambda,
+			 const int32_t *idx, const float *conf, int64_t len,
+			 double *A, double *b)
 {
-	double	   *A = scratch;
-	double	   *b = scratch + (size_t) f * f;
 	int64_t		j;
 	int			r;
 	int			c;
-	int			k;
 
 	for (r = 0; r < f; r++)
 	{
 		for (c = 0; c <= r; c++)
 			A[r * f + c] = G[r * f + c];
 		A[r * f + r] += lambda;
-		b[r] = 0.0;
+		if (b != NULL)
+			b[r] = 0.0;
 	}
 	for (j = 0; j < len; j++)
 	{
@@ -132,10 +130,23 @@ solve_cholesky(const float *F, const double *G, int f, double lambda,
 
 			for (c = 0; c <= r; c++)
 				Ar[c] += yr * y[c];
-			b[r] += cj * y[r];
+			if (b != NULL)
+				b[r] += cj * y[r];
 		}
 	}
-	/* in-place lower Cholesky factor */
+}
+
+/*
+ * Solve A x = b in place of A's lower triangle by Cholesky.  Returns 0
+ * when A is not positive definite.
+ */
+static int
+cholesky_solve(double *A, const double *b, int f, double *x)
+{
+	int			r;
+	int			c;
+	int			k;
+
 	for (r = 0; r < f; r++)
 	{
 		for (c = 0; c <= r; c++)
@@ -171,6 +182,43 @@ solve_cholesky(const float *F, const double *G, int f, double lambda,
 			s -= A[k * f + r] * x[k];
 		x[r] = s / A[r * f + r];
 	}
+	return 1;
+}
+
+/* The exact row solve of the fit. */
+static int
+solve_cholesky(const float *F, const double *G, int f, double lambda,
+			   const int32_t *idx, const float *conf, int64_t len,
+			   double *x, double *scratch)
+{
+	double	   *A = scratch;
+	double	   *b = scratch + (size_t) f * f;
+
+	build_system(F, G, f, lambda, idx, conf, len, A, b);
+	return cholesky_solve(A, b, f, x);
+}
+
+/*
+ * Solve the row's system A z = rhs for another right-hand side (used to
+ * explain scores: z = A^-1 y_i).  scratch as for aff_solve_row.
+ */
+int
+aff_solve_system(const float *F, const double *gram, int f, double lambda,
+				 const int32_t *idx, const float *conf, int64_t len,
+				 const float *rhs, float *z, double *scratch)
+{
+	double	   *A = scratch;
+	double	   *b = scratch + (size_t) f * f;
+	double	   *x = b + f;
+	int			k;
+
+	build_system(F, gram, f, lambda, idx, conf, len, A, NULL);
+	for (k = 0; k < f; k++)
+		b[k] = rhs[k];
+	if (!cholesky_solve(A, b, f, x))
+		return 0;
+	for (k = 0; k < f; k++)
+		z[k] = (float) x[k];
 	return 1;
 }
 

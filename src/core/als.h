@@ -57,6 +57,10 @@ extern int	aff_solve_row(const float *F, const double *gram, int f,
 						  double lambda, const int32_t *idx, const float *conf,
 						  int64_t len, int solver, int cg_steps, float *x,
 						  double *scratch);
+extern int	aff_solve_system(const float *F, const double *gram, int f,
+							 double lambda, const int32_t *idx, const float *conf,
+							 int64_t len, const float *rhs, float *z,
+							 double *scratch);
 extern size_t aff_solve_scratch_len(int f);
 
 #endif

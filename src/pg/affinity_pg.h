@@ -58,7 +58,30 @@ extern void report_engine_error(const AffError *err) pg_attribute_noreturn();
 
 /* Model values (model_io.c) */
 extern bytea *model_build(const AffModelParts *parts);
+
+/* The per-backend model cache (model_cache.c) */
+typedef struct CachedModel
+{
+	MemoryContext cxt;			/* holds the entry and all it owns */
+	Oid			toastrelid;		/* InvalidOid for values that came in memory */
+	Oid			valueid;
+	uint64		size;
+	uint64		checksum;
+	bytea	   *value;			/* aligned copy of the value */
+	AffModelView view;
+	double	   *gram;			/* Y^T Y, on first use */
+	float	   *item_norms;		/* on first use */
+	float	   *user_norms;
+	uint64		last_used;
+	Size		bytes;
+} CachedModel;
+
+extern int	affinity_model_cache_size_mb;
+extern CachedModel *model_get(FunctionCallInfo fcinfo, int argno);
 extern void model_fetch(FunctionCallInfo fcinfo, int argno, AffModelView *view);
+extern const double *cached_gram(CachedModel *e);
+extern const float *cached_norms(CachedModel *e, bool users);
+extern void cache_stats(int *entries, int64 *bytes, int64 *hits, int64 *loads);
 
 /* jsonb assembly (serving.c) */
 extern Jsonb *jsonb_from_cstring(const char *s);

@@ -65,6 +65,11 @@ _PG_init(void)
 							NULL,
 							&affinity_max_fit_memory_mb, 8192, 1, INT_MAX,
 							PGC_USERSET, GUC_UNIT_MB, NULL, NULL, NULL);
+	DefineCustomIntVariable("affinity.model_cache_size",
+							"Memory for models kept decoded between calls in one backend.",
+							"Least recently used models are dropped first; the model in use always stays.",
+							&affinity_model_cache_size_mb, 256, 0, INT_MAX,
+							PGC_USERSET, GUC_UNIT_MB, NULL, NULL, NULL);
 	DefineCustomBoolVariable("affinity.verbose",
 							 "Report each sweep of a fit as a NOTICE.",
 							 NULL,
@@ -140,6 +145,18 @@ affinity_runtime(PG_FUNCTION_ARGS)
 					 aff_online_cpus(), affinity_threads, affinity_max_threads,
 					 resolve_threads(affinity_threads));
 	append_cpu_features(&s);
+	{
+		int			n;
+		int64		bytes;
+		int64		hits;
+		int64		loads;
+
+		cache_stats(&n, &bytes, &hits, &loads);
+		appendStringInfo(&s, ", \"model_cache\": {\"entries\": %d, \"bytes\": " INT64_FORMAT
+						 ", \"hits\": " INT64_FORMAT ", \"loads\": " INT64_FORMAT
+						 ", \"limit_mb\": %d}",
+						 n, bytes, hits, loads, affinity_model_cache_size_mb);
+	}
 	appendStringInfoString(&s, "}");
 	PG_RETURN_JSONB_P(jsonb_from_cstring(s.data));
 }

@@ -12,7 +12,6 @@
 
 #include <ctype.h>
 
-#include "access/detoast.h"
 #include "common/base64.h"
 #include "libpq/pqformat.h"
 #include "utils/memutils.h"
@@ -198,66 +197,4 @@ model_send(PG_FUNCTION_ARGS)
 	pq_begintypsend(&buf);
 	pq_sendbytes(&buf, VARDATA_ANY(v), VARSIZE_ANY_EXHDR(v));
 	PG_RETURN_BYTEA_P(pq_endtypsend(&buf));
-}
-
-/*
- * Per-query cache of one detoasted model, in fn_extra: a LATERAL call per
- * row reads a stored model once, not once per row.  Keyed by the TOAST
- * pointer, which names one immutable stored value.
- */
-typedef struct FetchCache
-{
-	Oid			toastrelid;
-	Oid			valueid;
-	int32		rawsize;
-	bytea	   *value;
-} FetchCache;
-
-/* Detoast argument argno, align it, and view it (structural checks). */
-void
-model_fetch(FunctionCallInfo fcinfo, int argno, AffModelView *view)
-{
-	struct varlena *raw = (struct varlena *) PG_GETARG_RAW_VARLENA_P(argno);
-	FetchCache *cache = (FetchCache *) fcinfo->flinfo->fn_extra;
-	struct varlena *v;
-	AffError	err;
-
-	if (VARATT_IS_EXTERNAL_ONDISK(raw))
-	{
-		struct varatt_external ptr;
-
-		VARATT_EXTERNAL_GET_POINTER(ptr, raw);
-		if (cache == NULL)
-		{
-			cache = MemoryContextAllocZero(fcinfo->flinfo->fn_mcxt, sizeof(FetchCache));
-			fcinfo->flinfo->fn_extra = cache;
-		}
-		if (cache->value == NULL || cache->toastrelid != ptr.va_toastrelid ||
-			cache->valueid != ptr.va_valueid || cache->rawsize != ptr.va_rawsize)
-		{
-			MemoryContext old = MemoryContextSwitchTo(fcinfo->flinfo->fn_mcxt);
-
-			if (cache->value != NULL)
-				pfree(cache->value);
-			cache->value = NULL;
-			cache->value = (bytea *) detoast_attr(raw);
-			cache->toastrelid = ptr.va_toastrelid;
-			cache->valueid = ptr.va_valueid;
-			cache->rawsize = ptr.va_rawsize;
-			MemoryContextSwitchTo(old);
-		}
-		v = (struct varlena *) cache->value;
-	}
-	else
-		v = (struct varlena *) PG_DETOAST_DATUM(PointerGetDatum(raw));
-
-	if (((uintptr_t) v & 7) != 0)
-	{
-		struct varlena *copy = palloc(VARSIZE(v));
-
-		memcpy(copy, v, VARSIZE(v));
-		v = copy;
-	}
-	if (aff_model_view((const uint8 *) v, VARSIZE(v), view, &err) != AFF_OK)
-		report_engine_error(&err);
 }

@@ -1,195 +1,99 @@
 /*
  * serving.c
- *		Serving functions: top_items, items_like, score, the vector exports
- *		and describe.
+ *		Per-request serving: top_items for a known user or for a basket,
+ *		items_like, users_like, score and reasons.
  *
- * Every function reads the model through model_fetch (detoasted once per
- * query for stored values) and works on index space: keys are mapped to
- * dense indices by binary search in the sorted dictionaries, exclusions
- * become a byte mask over items, candidate lists a sorted index list, and
- * the best k come from a bounded heap (core/topk.c), never a full sort.
- * An unknown user or item is not an error.
+ * Every function reads the model through the per-backend cache
+ * (model_cache.c) and works in index space: keys become dense indices by
+ * binary search in the sorted dictionaries, exclusions a byte mask over
+ * items, candidate lists a sorted index list, and the best k come from a
+ * bounded heap (core/topk.c), never a full sort.  An unknown user or item
+ * is not an error.
  */
-#include "affinity_pg.h"
+#include "serving_common.h"
 
 #include <cblas.h>
 #include <math.h>
 
 #include "catalog/pg_type.h"
 #include "funcapi.h"
-#include "lib/stringinfo.h"
-#include "miscadmin.h"
 #include "utils/array.h"
-#include "utils/builtins.h"
-#include "utils/float.h"
-#include "utils/lsyscache.h"
-#include "utils/tuplestore.h"
 
-#include "../core/interactions.h"
-#include "../core/topk.h"
+#include "../core/als.h"
 #include "weights.h"
 
-Jsonb *
-jsonb_from_cstring(const char *s)
-{
-	return DatumGetJsonbP(DirectFunctionCall1(jsonb_in, CStringGetDatum(s)));
-}
-
+/*
+ * Scores of all items for a known user u (index): x_u . y_i for
+ * implicit_als, the training items' weights for ease and item_knn,
+ * popularity otherwise.
+ */
 static void
-materialize(FunctionCallInfo fcinfo)
+user_scores(const AffModelView *v, int64 u, float *scores)
 {
-#if PG_VERSION_NUM >= 150001
-	InitMaterializedSRF(fcinfo, 0);
-#else
-	SetSingleFuncCall(fcinfo, 0);
-#endif
-}
+	int64		lo = v->seen_ptr[u];
 
-static void
-put_row(FunctionCallInfo fcinfo, Datum *values)
-{
-	ReturnSetInfo *rsinfo = (ReturnSetInfo *) fcinfo->resultinfo;
-	bool		nulls[4] = {false, false, false, false};
-
-	tuplestore_putvalues(rsinfo->setResult, rsinfo->setDesc, values, nulls);
-}
-
-/* An argument that may not be NULL. */
-static void
-require_arg(FunctionCallInfo fcinfo, int argno, const char *name)
-{
-	if (PG_ARGISNULL(argno))
-		ereport(ERROR,
-				(errcode(ERRCODE_NULL_VALUE_NOT_ALLOWED),
-				 errmsg("argument \"%s\" must not be NULL", name)));
-}
-
-/* k: not NULL, not negative; capped at limit. */
-static int64
-get_k(FunctionCallInfo fcinfo, int argno, int64 limit)
-{
-	int32		k;
-
-	require_arg(fcinfo, argno, "k");
-	k = PG_GETARG_INT32(argno);
-	if (k < 0)
-		ereport(ERROR,
-				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
-				 errmsg("k must not be negative"),
-				 errdetail("k is %d.", k)));
-	return k < limit ? k : limit;
-}
-
-static void
-require_factors(const AffModelView *v, const char *fn)
-{
-	if (v->item_factors == NULL)
-		ereport(ERROR,
-				(errcode(ERRCODE_FEATURE_NOT_SUPPORTED),
-				 errmsg("%s needs a model with latent factors", fn),
-				 errdetail("This model was fitted with method \"%s\".",
-						   aff_method_name(v->h->method)),
-				 errhint("Fit with method \"implicit_als\".")));
-}
-
-static int
-cmp_int32(const void *a, const void *b)
-{
-	int32		x = *(const int32 *) a;
-	int32		y = *(const int32 *) b;
-
-	return x < y ? -1 : (x > y);
+	switch (v->h->method)
+	{
+		case AFF_METHOD_IMPLICIT_ALS:
+			cblas_sgemv(CblasRowMajor, CblasNoTrans, (int) v->h->n_items,
+						v->h->factors, 1.0f, v->item_factors, v->h->factors,
+						v->user_factors + (size_t) u * v->h->factors, 1, 0.0f,
+						scores, 1);
+			break;
+		case AFF_METHOD_EASE:
+		case AFF_METHOD_ITEM_KNN:
+			weights_scores(v, v->seen_items + lo, v->seen_weights + lo,
+						   v->seen_ptr[u + 1] - lo, scores);
+			break;
+		default:
+			memcpy(scores, v->popularity, sizeof(float) * v->h->n_items);
+	}
 }
 
 /*
- * Indices of the known keys of a bigint[] argument (NULL elements and
- * unknown keys ignored), sorted and without repeats.  *n gets the count.
+ * The best k of scores over the items not masked by skip (all items, or
+ * only cand[0..n_cand) when cand is given), emitted as rows.
  */
-static int32 *
-array_item_indices(FunctionCallInfo fcinfo, int argno, const AffModelView *v, int *n)
+static void
+emit_best(FunctionCallInfo fcinfo, const AffModelView *v, const float *scores,
+		  const uint8 *skip, const int32 *cand, int n_cand, int64 k)
 {
-	ArrayType  *arr = PG_GETARG_ARRAYTYPE_P(argno);
-	Datum	   *elems;
-	bool	   *nulls;
-	int			ne;
+	AffTopK		t;
+	int64		i;
+
+	aff_topk_init(&t, palloc(sizeof(AffScored) * k), k);
+	if (cand == NULL)
+	{
+		for (i = 0; i < v->h->n_items; i++)
+			if (!skip[i])
+				aff_topk_push(&t, scores[i], (int32) i);
+	}
+	else
+		for (i = 0; i < n_cand; i++)
+			if (!skip[cand[i]])
+				aff_topk_push(&t, scores[cand[i]], cand[i]);
+	emit_topk(fcinfo, &t, v->item_keys);
+}
+
+/* Mark the items of the bigint[] argument argno (when not NULL) in skip. */
+static void
+mask_items(FunctionCallInfo fcinfo, int argno, const AffModelView *v, uint8 *skip)
+{
+	int			n;
 	int32	   *idx;
 	int			i;
-	int			out = 0;
 
-	deconstruct_array(arr, INT8OID, 8, true, TYPALIGN_DOUBLE, &elems, &nulls, &ne);
-	idx = palloc(sizeof(int32) * (ne + 1));
-	for (i = 0; i < ne; i++)
-	{
-		int64		j;
-
-		if (nulls[i])
-			continue;
-		j = aff_find_key(v->item_keys, v->h->n_items, DatumGetInt64(elems[i]));
-		if (j >= 0)
-			idx[out++] = (int32) j;
-	}
-	qsort(idx, out, sizeof(int32), cmp_int32);
-	*n = 0;
-	for (i = 0; i < out; i++)
-		if (i == 0 || idx[i] != idx[i - 1])
-			idx[(*n)++] = idx[i];
-	return idx;
+	if (PG_ARGISNULL(argno))
+		return;
+	idx = array_key_indices(fcinfo, argno, v->item_keys, v->h->n_items, &n);
+	for (i = 0; i < n; i++)
+		skip[idx[i]] = 1;
 }
 
-/* Emit the heap's content as (key, score, rank) rows. */
-static void
-emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const int64 *keys)
+static float *
+alloc_scores(const AffModelView *v)
 {
-	int64		n = aff_topk_finish(t);
-	int64		r;
-
-	for (r = 0; r < n; r++)
-	{
-		Datum		values[3];
-
-		values[0] = Int64GetDatum(keys[t->heap[r].index]);
-		values[1] = Float4GetDatum(t->heap[r].score);
-		values[2] = Int32GetDatum((int32) (r + 1));
-		put_row(fcinfo, values);
-	}
-}
-
-static inline float
-dot_f(const float *a, const float *b, int f)
-{
-	float		s = 0;
-	int			k;
-
-	for (k = 0; k < f; k++)
-		s += a[k] * b[k];
-	return s;
-}
-
-/*
- * Fill scores[] for all items (or, with cand, only the candidates) from
- * the user vector x, or from popularity when x is NULL.
- */
-static void
-score_items(const AffModelView *v, const float *x, const int32 *cand, int n_cand,
-			float *scores)
-{
-	int			f = v->h->factors;
-	int			c;
-
-	if (x == NULL)
-	{
-		if (cand == NULL)
-			memcpy(scores, v->popularity, sizeof(float) * v->h->n_items);
-		else
-			for (c = 0; c < n_cand; c++)
-				scores[cand[c]] = v->popularity[cand[c]];
-	}
-	else if (cand == NULL)
-		cblas_sgemv(CblasRowMajor, CblasNoTrans, (int) v->h->n_items, f, 1.0f,
-					v->item_factors, f, x, 1, 0.0f, scores, 1);
-	else
-		for (c = 0; c < n_cand; c++)
-			scores[cand[c]] = dot_f(v->item_factors + (size_t) cand[c] * f, x, f);
+	return palloc_extended(sizeof(float) * v->h->n_items, MCXT_ALLOC_HUGE);
 }
 
 PG_FUNCTION_INFO_V1(top_items);
@@ -203,16 +107,11 @@ top_items(PG_FUNCTION_ARGS)
 {
 	AffModelView v;
 	int64		k;
-	int64		u = -1;
-	bool		exclude_seen;
-	bool		fallback;
+	int64		u;
 	uint8	   *skip;
 	int32	   *cand = NULL;
 	int			n_cand = 0;
-	const float *x = NULL;
 	float	   *scores;
-	AffTopK		t;
-	int64		i;
 	int64		j;
 
 	materialize(fcinfo);
@@ -222,91 +121,301 @@ top_items(PG_FUNCTION_ARGS)
 	k = get_k(fcinfo, 2, v.h->n_items);
 	require_arg(fcinfo, 3, "exclude_seen");
 	require_arg(fcinfo, 6, "fallback_popular");
-	exclude_seen = PG_GETARG_BOOL(3);
-	fallback = PG_GETARG_BOOL(6);
-
 	u = aff_find_key(v.user_keys, v.h->n_users, PG_GETARG_INT64(1));
-	if (k == 0 || (u < 0 && !fallback))
+	if (k == 0 || (u < 0 && !PG_GETARG_BOOL(6)))
 		return (Datum) 0;
-	if (u >= 0 && v.h->method == AFF_METHOD_IMPLICIT_ALS)
-		x = v.user_factors + (size_t) u * v.h->factors;
 
 	skip = palloc0(v.h->n_items);
-	if (u >= 0 && exclude_seen)
+	if (u >= 0 && PG_GETARG_BOOL(3))
 		for (j = v.seen_ptr[u]; j < v.seen_ptr[u + 1]; j++)
 			skip[v.seen_items[j]] = 1;
-	if (!PG_ARGISNULL(4))
-	{
-		int			n;
-		int32	   *ex = array_item_indices(fcinfo, 4, &v, &n);
-
-		for (i = 0; i < n; i++)
-			skip[ex[i]] = 1;
-	}
+	mask_items(fcinfo, 4, &v, skip);
 	if (!PG_ARGISNULL(5))
-		cand = array_item_indices(fcinfo, 5, &v, &n_cand);
+		cand = array_key_indices(fcinfo, 5, v.item_keys, v.h->n_items, &n_cand);
 
-	scores = palloc_extended(sizeof(float) * v.h->n_items, MCXT_ALLOC_HUGE);
-	score_items(&v, x, cand, n_cand, scores);
-	aff_topk_init(&t, palloc(sizeof(AffScored) * k), k);
-	if (cand == NULL)
+	scores = alloc_scores(&v);
+	if (u < 0)
+		memcpy(scores, v.popularity, sizeof(float) * v.h->n_items);
+	else if (cand != NULL && v.h->method == AFF_METHOD_IMPLICIT_ALS)
 	{
-		for (i = 0; i < v.h->n_items; i++)
-			if (!skip[i])
-				aff_topk_push(&t, scores[i], (int32) i);
+		/* a short candidate list costs one dot product per candidate */
+		const float *x = v.user_factors + (size_t) u * v.h->factors;
+
+		for (j = 0; j < n_cand; j++)
+			scores[cand[j]] = dot_f(v.item_factors + (size_t) cand[j] * v.h->factors,
+									x, v.h->factors);
 	}
 	else
-		for (i = 0; i < n_cand; i++)
-			if (!skip[cand[i]])
-				aff_topk_push(&t, scores[cand[i]], cand[i]);
-	emit_topk(fcinfo, &t, v.item_keys);
+		user_scores(&v, u, scores);
+	emit_best(fcinfo, &v, scores, skip, cand, n_cand, k);
 	return (Datum) 0;
 }
 
-PG_FUNCTION_INFO_V1(items_like);
-
-/* items_like(model, item_id, k, candidates) -> (item_id, similarity, rank) */
-Datum
-items_like(PG_FUNCTION_ARGS)
+/*
+ * The basket argument as sorted known item indices with summed weights.
+ * weights (argno_w, may be NULL) must match the basket's length; NULL
+ * elements of the basket are skipped, weights must be finite and >= 0.
+ */
+static int
+basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
+			 int argno_w, int32 **idx_out, float **w_out)
 {
+	ArrayType  *b = PG_GETARG_ARRAYTYPE_P(argno_b);
+	Datum	   *be;
+	bool	   *bn;
+	int			nb;
+	Datum	   *we = NULL;
+	bool	   *wn = NULL;
+	int			nw = 0;
+	float	   *acc = NULL;
+	int32	   *idx;
+	float	   *w;
+	int			n = 0;
+	int			i;
+
+	deconstruct_array(b, INT8OID, 8, true, TYPALIGN_DOUBLE, &be, &bn, &nb);
+	if (!PG_ARGISNULL(argno_w))
+	{
+		deconstruct_array(PG_GETARG_ARRAYTYPE_P(argno_w), FLOAT4OID, 4, true,
+						  TYPALIGN_INT, &we, &wn, &nw);
+		if (nw != nb)
+			ereport(ERROR,
+					(errcode(ERRCODE_ARRAY_SUBSCRIPT_ERROR),
+					 errmsg("weights must have one entry per basket item"),
+					 errdetail("The basket has %d items and weights has %d entries.", nb, nw)));
+	}
+	acc = palloc0(sizeof(float) * v->h->n_items);
+	idx = palloc(sizeof(int32) * (nb + 1));
+	w = palloc(sizeof(float) * (nb + 1));
+	for (i = 0; i < nb; i++)
+	{
+		int64		j;
+		float		wi = 1.0f;
+
+		if (we != NULL)
+		{
+			wi = wn[i] ? 0.0f : DatumGetFloat4(we[i]);
+			if (!(wi >= 0) || isinf(wi))
+				ereport(ERROR,
+						(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
+						 errmsg("basket weights must be finite and not negative"),
+						 errdetail("Weight %d is %g.", i + 1, (double) wi)));
+		}
+		if (bn[i] || wi == 0)
+			continue;
+		j = aff_find_key(v->item_keys, v->h->n_items, DatumGetInt64(be[i]));
+		if (j < 0)
+			continue;
+		if (acc[j] == 0)
+			idx[n++] = (int32) j;
+		acc[j] += wi;
+	}
+	/* ascending indices, as the engine's training lists are */
+	for (i = 1; i < n; i++)
+	{
+		int32		t = idx[i];
+		int			p = i - 1;
+
+		while (p >= 0 && idx[p] > t)
+		{
+			idx[p + 1] = idx[p];
+			p--;
+		}
+		idx[p + 1] = t;
+	}
+	for (i = 0; i < n; i++)
+		w[i] = acc[idx[i]];
+	pfree(acc);
+	*idx_out = idx;
+	*w_out = w;
+	return n;
+}
+
+/*
+ * Fold-in: the user vector that the fit's per-row problem gives for this
+ * basket against the fixed item factors, solved exactly (Cholesky), with
+ * the model's confidence, alpha, epsilon and regularization.
+ */
+static void
+fold_in(CachedModel *e, const int32 *idx, const float *w, int n, float *x)
+{
+	const AffModelView *v = &e->view;
+	const AffModelHeader *h = v->h;
+	int			f = h->factors;
+	float	   *conf = palloc(sizeof(float) * (n + 1));
+	double	   *scratch = palloc(sizeof(double) * aff_solve_scratch_len(f));
+	int			i;
+
+	for (i = 0; i < n; i++)
+		conf[i] = (float) aff_confidence(h->confidence, h->alpha, h->epsilon, w[i]);
+	memset(x, 0, sizeof(float) * f);
+	if (!aff_solve_row(v->item_factors, cached_gram(e), f, h->regularization,
+					   idx, conf, n, AFF_SOLVER_CHOLESKY, 0, x, scratch))
+		ereport(ERROR,
+				(errcode(ERRCODE_NUMERIC_VALUE_OUT_OF_RANGE),
+				 errmsg("the basket's least-squares system is not positive definite"),
+				 errdetail("The model's regularization is %g.", h->regularization)));
+}
+
+PG_FUNCTION_INFO_V1(top_items_basket);
+
+/*
+ * top_items(model, basket bigint[], k, weights, exclude_seen, exclude,
+ *			 candidates) -> (item_id, score, rank)
+ * For a user the model has never seen.  A basket with no known item gets
+ * the most popular items.
+ */
+Datum
+top_items_basket(PG_FUNCTION_ARGS)
+{
+	CachedModel *e;
 	AffModelView v;
 	int64		k;
-	int64		it;
-	int			f;
-	const float *y;
-	float		ny;
+	int32	   *idx;
+	float	   *w;
+	int			n;
+	uint8	   *skip;
 	int32	   *cand = NULL;
 	int			n_cand = 0;
-	AffTopK		t;
-	int64		i;
+	float	   *scores;
+	int			i;
 
 	materialize(fcinfo);
 	if (PG_ARGISNULL(0) || PG_ARGISNULL(1))
 		return (Datum) 0;
-	model_fetch(fcinfo, 0, &v);
-	require_factors(&v, "items_like");
+	e = model_get(fcinfo, 0);
+	v = e->view;
+	k = get_k(fcinfo, 2, v.h->n_items);
+	require_arg(fcinfo, 4, "exclude_seen");
+	if (k == 0)
+		return (Datum) 0;
+	n = basket_items(fcinfo, &v, 1, 3, &idx, &w);
+
+	skip = palloc0(v.h->n_items);
+	if (PG_GETARG_BOOL(4))
+		for (i = 0; i < n; i++)
+			skip[idx[i]] = 1;
+	mask_items(fcinfo, 5, &v, skip);
+	if (!PG_ARGISNULL(6))
+		cand = array_key_indices(fcinfo, 6, v.item_keys, v.h->n_items, &n_cand);
+
+	scores = alloc_scores(&v);
+	if (n == 0 || v.h->method == AFF_METHOD_POPULARITY)
+		memcpy(scores, v.popularity, sizeof(float) * v.h->n_items);
+	else if (v.h->method == AFF_METHOD_IMPLICIT_ALS)
+	{
+		float	   *x = palloc(sizeof(float) * v.h->factors);
+
+		fold_in(e, idx, w, n, x);
+		cblas_sgemv(CblasRowMajor, CblasNoTrans, (int) v.h->n_items, v.h->factors,
+					1.0f, v.item_factors, v.h->factors, x, 1, 0.0f, scores, 1);
+	}
+	else
+		weights_scores(&v, idx, w, n, scores);
+	emit_best(fcinfo, &v, scores, skip, cand, n_cand, k);
+	return (Datum) 0;
+}
+
+/*
+ * Cosine neighbours of row r of F (n rows of f) among all rows or the
+ * candidates, the row itself left out.
+ */
+static void
+emit_cosine(FunctionCallInfo fcinfo, const float *F, const float *norms,
+			int64 n, int f, int64 r, const int32 *cand, int n_cand, int64 k,
+			const int64 *keys)
+{
+	const float *y = F + (size_t) r * f;
+	AffTopK		t;
+	int64		i;
+
+	aff_topk_init(&t, palloc(sizeof(AffScored) * k), k);
+	for (i = 0; i < (cand ? n_cand : n); i++)
+	{
+		int32		j = cand ? cand[i] : (int32) i;
+		float		d = norms[r] * norms[j];
+
+		if (j != r)
+			aff_topk_push(&t, d > 0 ? dot_f(y, F + (size_t) j * f, f) / d : 0.0f, j);
+	}
+	emit_topk(fcinfo, &t, keys);
+}
+
+PG_FUNCTION_INFO_V1(items_like);
+
+/*
+ * items_like(model, item_id, k, candidates) -> (item_id, similarity, rank):
+ * cosine of item factors (implicit_als), the learned weights (ease,
+ * item_knn).
+ */
+Datum
+items_like(PG_FUNCTION_ARGS)
+{
+	CachedModel *e;
+	AffModelView v;
+	int64		k;
+	int64		it;
+	int32	   *cand = NULL;
+	int			n_cand = 0;
+
+	materialize(fcinfo);
+	if (PG_ARGISNULL(0) || PG_ARGISNULL(1))
+		return (Datum) 0;
+	e = model_get(fcinfo, 0);
+	v = e->view;
+	if (v.h->method == AFF_METHOD_POPULARITY)
+		require_factors(&v, "items_like");
 	k = get_k(fcinfo, 2, v.h->n_items);
 	it = aff_find_key(v.item_keys, v.h->n_items, PG_GETARG_INT64(1));
 	if (it < 0 || k == 0)
 		return (Datum) 0;
 	if (!PG_ARGISNULL(3))
-		cand = array_item_indices(fcinfo, 3, &v, &n_cand);
+		cand = array_key_indices(fcinfo, 3, v.item_keys, v.h->n_items, &n_cand);
 
-	f = v.h->factors;
-	y = v.item_factors + (size_t) it * f;
-	ny = sqrtf(dot_f(y, y, f));
-	aff_topk_init(&t, palloc(sizeof(AffScored) * k), k);
-	for (i = 0; i < (cand ? n_cand : v.h->n_items); i++)
+	if (v.h->method == AFF_METHOD_IMPLICIT_ALS)
+		emit_cosine(fcinfo, v.item_factors, cached_norms(e, false), v.h->n_items,
+					v.h->factors, it, cand, n_cand, k, v.item_keys);
+	else
 	{
-		int32		j = cand ? cand[i] : (int32) i;
-		const float *z = v.item_factors + (size_t) j * f;
-		float		nz = sqrtf(dot_f(z, z, f));
-		float		sim = (ny > 0 && nz > 0) ? dot_f(y, z, f) / (ny * nz) : 0.0f;
+		float	   *sims = alloc_scores(&v);
+		uint8	   *skip = palloc0(v.h->n_items);
 
-		if (j != it)
-			aff_topk_push(&t, sim, j);
+		weights_item_row(&v, it, sims);
+		skip[it] = 1;
+		emit_best(fcinfo, &v, sims, skip, cand, n_cand, k);
 	}
-	emit_topk(fcinfo, &t, v.item_keys);
+	return (Datum) 0;
+}
+
+PG_FUNCTION_INFO_V1(users_like);
+
+/* users_like(model, user_id, k) -> (user_id, similarity, rank) */
+Datum
+users_like(PG_FUNCTION_ARGS)
+{
+	CachedModel *e;
+	AffModelView v;
+	int64		k;
+	int64		u;
+
+	materialize(fcinfo);
+	if (PG_ARGISNULL(0) || PG_ARGISNULL(1))
+		return (Datum) 0;
+	e = model_get(fcinfo, 0);
+	v = e->view;
+	if (v.h->method != AFF_METHOD_IMPLICIT_ALS)
+		ereport(ERROR,
+				(errcode(ERRCODE_FEATURE_NOT_SUPPORTED),
+				 errmsg("users_like needs a model with user factors"),
+				 errdetail("This model was fitted with method \"%s\".",
+						   aff_method_name(v.h->method)),
+				 errhint("Fit with method \"implicit_als\".")));
+	k = get_k(fcinfo, 2, v.h->n_users);
+	u = aff_find_key(v.user_keys, v.h->n_users, PG_GETARG_INT64(1));
+	if (u < 0 || k == 0)
+		return (Datum) 0;
+	emit_cosine(fcinfo, v.user_factors, cached_norms(e, true), v.h->n_users,
+				v.h->factors, u, NULL, 0, k, v.user_keys);
 	return (Datum) 0;
 }
 
@@ -325,162 +434,121 @@ score(PG_FUNCTION_ARGS)
 	i = aff_find_key(v.item_keys, v.h->n_items, PG_GETARG_INT64(2));
 	if (u < 0 || i < 0)
 		PG_RETURN_NULL();
-	if (v.item_factors == NULL)
-		PG_RETURN_FLOAT4(v.popularity[i]);
-	PG_RETURN_FLOAT4(dot_f(v.user_factors + (size_t) u * v.h->factors,
-						   v.item_factors + (size_t) i * v.h->factors,
-						   v.h->factors));
+	switch (v.h->method)
+	{
+		case AFF_METHOD_IMPLICIT_ALS:
+			PG_RETURN_FLOAT4(dot_f(v.user_factors + (size_t) u * v.h->factors,
+								   v.item_factors + (size_t) i * v.h->factors,
+								   v.h->factors));
+		case AFF_METHOD_EASE:
+		case AFF_METHOD_ITEM_KNN:
+			{
+				float		s = 0;
+				int64		j;
+
+				for (j = v.seen_ptr[u]; j < v.seen_ptr[u + 1]; j++)
+					s += weights_pair(&v, v.seen_items[j], (int32) i);
+				PG_RETURN_FLOAT4(s);
+			}
+		default:
+			PG_RETURN_FLOAT4(v.popularity[i]);
+	}
 }
 
-static ArrayType *
-vector_array(const float *x, int f)
+/*
+ * Contributions of the user's training items to the score of item i for
+ * implicit_als (Hu, Koren, Volinsky 2008, section 5): with
+ * W = (Y^T C_u Y + lambda I)^-1, training item j adds c_uj * y_i^T W y_j.
+ * They add up to y_i . x where x is the user's vector solved exactly
+ * against the current item factors.  contrib[j] gets one entry per
+ * training item.
+ */
+static void
+als_contributions(CachedModel *e, int64 u, int64 i, float *contrib)
 {
-	Datum	   *d = palloc(sizeof(Datum) * f);
-	int			k;
-
-	for (k = 0; k < f; k++)
-		d[k] = Float4GetDatum(x[k]);
-	return construct_array(d, f, FLOAT4OID, 4, true, TYPALIGN_INT);
-}
-
-/* Shared body of user_vector and item_vector. */
-static Datum
-one_vector(FunctionCallInfo fcinfo, bool users)
-{
-	AffModelView v;
+	const AffModelView *v = &e->view;
+	const AffModelHeader *h = v->h;
+	int			f = h->factors;
+	int64		lo = v->seen_ptr[u];
+	int64		n = v->seen_ptr[u + 1] - lo;
+	const int32 *idx = v->seen_items + lo;
+	float	   *conf = palloc(sizeof(float) * (n + 1));
+	double	   *scratch = palloc(sizeof(double) * aff_solve_scratch_len(f));
+	float	   *z = palloc(sizeof(float) * f);
+	int32		ii = (int32) i;
 	int64		j;
 
-	model_fetch(fcinfo, 0, &v);
-	require_factors(&v, users ? "user_vector" : "item_vector");
-	j = users ? aff_find_key(v.user_keys, v.h->n_users, PG_GETARG_INT64(1))
-		: aff_find_key(v.item_keys, v.h->n_items, PG_GETARG_INT64(1));
-	if (j < 0)
-		PG_RETURN_NULL();
-	PG_RETURN_ARRAYTYPE_P(vector_array((users ? v.user_factors : v.item_factors) +
-									   (size_t) j * v.h->factors, v.h->factors));
+	/* z = W y_i: the row system with b = y_i, i.e. one item of confidence 1 */
+	for (j = 0; j < n; j++)
+		conf[j] = (float) aff_confidence(h->confidence, h->alpha, h->epsilon,
+										 v->seen_weights[lo + j]);
+	if (!aff_solve_system(v->item_factors, cached_gram(e), f, h->regularization,
+						  idx, conf, n, v->item_factors + (size_t) ii * f, z, scratch))
+		ereport(ERROR,
+				(errcode(ERRCODE_NUMERIC_VALUE_OUT_OF_RANGE),
+				 errmsg("the user's least-squares system is not positive definite")));
+	for (j = 0; j < n; j++)
+		contrib[j] = conf[j] * dot_f(z, v->item_factors + (size_t) idx[j] * f, f);
 }
 
-/* Shared body of user_vectors and item_vectors. */
-static Datum
-all_vectors(FunctionCallInfo fcinfo, bool users)
+PG_FUNCTION_INFO_V1(reasons);
+
+/*
+ * reasons(model, user_id, item_id, k) -> (past_item_id, contribution,
+ * rank): which of the user's training items push this item up, and by how
+ * much.
+ */
+Datum
+reasons(PG_FUNCTION_ARGS)
 {
+	CachedModel *e;
 	AffModelView v;
+	int64		k;
+	int64		u;
+	int64		i;
 	int64		n;
-	const int64 *keys;
-	const float *F;
+	float	   *contrib;
+	AffTopK		t;
 	int64		j;
+	int64		r;
 
 	materialize(fcinfo);
-	model_fetch(fcinfo, 0, &v);
-	require_factors(&v, users ? "user_vectors" : "item_vectors");
-	n = users ? v.h->n_users : v.h->n_items;
-	keys = users ? v.user_keys : v.item_keys;
-	F = users ? v.user_factors : v.item_factors;
-	for (j = 0; j < n; j++)
-	{
-		Datum		values[2];
+	if (PG_ARGISNULL(0) || PG_ARGISNULL(1) || PG_ARGISNULL(2))
+		return (Datum) 0;
+	e = model_get(fcinfo, 0);
+	v = e->view;
+	if (v.h->method == AFF_METHOD_POPULARITY)
+		ereport(ERROR,
+				(errcode(ERRCODE_FEATURE_NOT_SUPPORTED),
+				 errmsg("reasons needs a personalised model"),
+				 errdetail("A popularity model ranks by buyer counts alone."),
+				 errhint("Fit with method \"implicit_als\", \"ease\" or \"item_knn\".")));
+	k = get_k(fcinfo, 3, v.h->nnz);
+	u = aff_find_key(v.user_keys, v.h->n_users, PG_GETARG_INT64(1));
+	i = aff_find_key(v.item_keys, v.h->n_items, PG_GETARG_INT64(2));
+	if (u < 0 || i < 0 || k == 0)
+		return (Datum) 0;
+	n = v.seen_ptr[u + 1] - v.seen_ptr[u];
+	contrib = palloc(sizeof(float) * (n + 1));
+	if (v.h->method == AFF_METHOD_IMPLICIT_ALS)
+		als_contributions(e, u, i, contrib);
+	else
+		for (j = 0; j < n; j++)
+			contrib[j] = weights_pair(&v, v.seen_items[v.seen_ptr[u] + j], (int32) i);
 
-		CHECK_FOR_INTERRUPTS();
-		values[0] = Int64GetDatum(keys[j]);
-		values[1] = PointerGetDatum(vector_array(F + (size_t) j * v.h->factors, v.h->factors));
+	/* heap over positions in the training list; they follow key order */
+	aff_topk_init(&t, palloc(sizeof(AffScored) * Min(k, n)), Min(k, n));
+	for (j = 0; j < n; j++)
+		aff_topk_push(&t, contrib[j], (int32) j);
+	n = aff_topk_finish(&t);
+	for (r = 0; r < n; r++)
+	{
+		Datum		values[3];
+
+		values[0] = Int64GetDatum(v.item_keys[v.seen_items[v.seen_ptr[u] + t.heap[r].index]]);
+		values[1] = Float4GetDatum(t.heap[r].score);
+		values[2] = Int32GetDatum((int32) (r + 1));
 		put_row(fcinfo, values);
 	}
 	return (Datum) 0;
-}
-
-PG_FUNCTION_INFO_V1(user_vector);
-Datum
-user_vector(PG_FUNCTION_ARGS)
-{
-	return one_vector(fcinfo, true);
-}
-
-PG_FUNCTION_INFO_V1(item_vector);
-Datum
-item_vector(PG_FUNCTION_ARGS)
-{
-	return one_vector(fcinfo, false);
-}
-
-PG_FUNCTION_INFO_V1(user_vectors);
-Datum
-user_vectors(PG_FUNCTION_ARGS)
-{
-	return all_vectors(fcinfo, true);
-}
-
-PG_FUNCTION_INFO_V1(item_vectors);
-Datum
-item_vectors(PG_FUNCTION_ARGS)
-{
-	return all_vectors(fcinfo, false);
-}
-
-static void
-append_doubles(StringInfo s, const char *key, const double *x, int64 n)
-{
-	int64		i;
-
-	appendStringInfo(s, ", \"%s\": [", key);
-	for (i = 0; i < n; i++)
-		appendStringInfo(s, "%s%s", i ? ", " : "", float8out_internal(x[i]));
-	appendStringInfoString(s, "]");
-}
-
-/* The options that the model's method used. */
-static void
-append_options(StringInfo s, const AffModelHeader *h)
-{
-	appendStringInfo(s, ", \"options\": {\"min_user_interactions\": %d, "
-					 "\"min_item_interactions\": %d",
-					 h->min_user_interactions, h->min_item_interactions);
-	if (h->method == AFF_METHOD_IMPLICIT_ALS)
-		appendStringInfo(s, ", \"factors\": %d, \"iterations\": %d, "
-						 "\"regularization\": %s, \"alpha\": %s, \"confidence\": \"%s\", "
-						 "\"epsilon\": %s, \"solver\": \"%s\", \"cg_steps\": %d, "
-						 "\"seed\": " INT64_FORMAT ", \"threads\": %d",
-						 h->factors, h->iterations,
-						 float8out_internal(h->regularization),
-						 float8out_internal(h->alpha),
-						 h->confidence == AFF_CONFIDENCE_LINEAR ? "linear" : "log",
-						 float8out_internal(h->epsilon),
-						 h->solver == AFF_SOLVER_CG ? "cg" : "cholesky",
-						 h->cg_steps, h->seed, h->threads);
-	appendStringInfoString(s, "}");
-}
-
-PG_FUNCTION_INFO_V1(describe);
-
-/* describe(model) -> jsonb */
-Datum
-describe(PG_FUNCTION_ARGS)
-{
-	AffModelView v;
-	const AffModelHeader *h;
-	StringInfoData s;
-
-	model_fetch(fcinfo, 0, &v);
-	h = v.h;
-	initStringInfo(&s);
-	appendStringInfo(&s, "{\"format_version\": %d, \"method\": \"%s\", \"key_type\": \"bigint\", "
-					 "\"users\": " INT64_FORMAT ", \"items\": " INT64_FORMAT
-					 ", \"interactions\": " INT64_FORMAT,
-					 h->version, aff_method_name(h->method),
-					 h->n_users, h->n_items, h->nnz);
-	append_options(&s, h);
-	appendStringInfo(&s, ", \"rows_read\": " INT64_FORMAT ", \"rows_skipped_null\": " INT64_FORMAT
-					 ", \"rows_skipped_zero\": " INT64_FORMAT ", \"duplicates_summed\": " INT64_FORMAT
-					 ", \"dropped_users\": " INT64_FORMAT ", \"dropped_items\": " INT64_FORMAT
-					 ", \"dropped_interactions\": " INT64_FORMAT,
-					 h->rows_read, h->rows_skipped_null, h->rows_skipped_zero,
-					 h->duplicates_summed, h->dropped_users, h->dropped_items,
-					 h->dropped_interactions);
-	append_doubles(&s, "loss", v.loss, v.n_sweeps);
-	append_doubles(&s, "sweep_seconds", v.sweep_seconds, v.n_sweeps);
-	appendStringInfo(&s, ", \"fit_seconds\": %s, \"size_bytes\": " UINT64_FORMAT
-					 ", \"checksum\": \"%016llx\", \"fingerprint\": \"%016llx\"}",
-					 float8out_internal(h->fit_seconds), h->total_size,
-					 (unsigned long long) h->checksum,
-					 (unsigned long long) h->fingerprint);
-	PG_RETURN_JSONB_P(jsonb_from_cstring(s.data));
 }

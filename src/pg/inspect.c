@@ -1,0 +1,251 @@
+/*
+ * inspect.c
+ *		Looking into a model: the vector exports and describe().
+ */
+#include "serving_common.h"
+
+#include "access/detoast.h"
+#include "funcapi.h"
+#include "lib/stringinfo.h"
+#include "miscadmin.h"
+#include "utils/float.h"
+
+/* Shared body of user_vector and item_vector. */
+static Datum
+one_vector(FunctionCallInfo fcinfo, bool users)
+{
+	AffModelView v;
+	int64		j;
+
+	model_fetch(fcinfo, 0, &v);
+	require_factors(&v, users ? "user_vector" : "item_vector");
+	j = users ? aff_find_key(v.user_keys, v.h->n_users, PG_GETARG_INT64(1))
+		: aff_find_key(v.item_keys, v.h->n_items, PG_GETARG_INT64(1));
+	if (j < 0)
+		PG_RETURN_NULL();
+	PG_RETURN_ARRAYTYPE_P(vector_array((users ? v.user_factors : v.item_factors) +
+									   (size_t) j * v.h->factors, v.h->factors));
+}
+
+/* Shared body of user_vectors and item_vectors. */
+static Datum
+all_vectors(FunctionCallInfo fcinfo, bool users)
+{
+	AffModelView v;
+	int64		n;
+	const int64 *keys;
+	const float *F;
+	int64		j;
+
+	materialize(fcinfo);
+	model_fetch(fcinfo, 0, &v);
+	require_factors(&v, users ? "user_vectors" : "item_vectors");
+	n = users ? v.h->n_users : v.h->n_items;
+	keys = users ? v.user_keys : v.item_keys;
+	F = users ? v.user_factors : v.item_factors;
+	for (j = 0; j < n; j++)
+	{
+		Datum		values[2];
+
+		CHECK_FOR_INTERRUPTS();
+		values[0] = Int64GetDatum(keys[j]);
+		values[1] = PointerGetDatum(vector_array(F + (size_t) j * v.h->factors, v.h->factors));
+		put_row(fcinfo, values);
+	}
+	return (Datum) 0;
+}
+
+PG_FUNCTION_INFO_V1(user_vector);
+Datum
+user_vector(PG_FUNCTION_ARGS)
+{
+	return one_vector(fcinfo, true);
+}
+
+PG_FUNCTION_INFO_V1(item_vector);
+Datum
+item_vector(PG_FUNCTION_ARGS)
+{
+	return one_vector(fcinfo, false);
+}
+
+PG_FUNCTION_INFO_V1(user_vectors);
+Datum
+user_vectors(PG_FUNCTION_ARGS)
+{
+	return all_vectors(fcinfo, true);
+}
+
+PG_FUNCTION_INFO_V1(item_vectors);
+Datum
+item_vectors(PG_FUNCTION_ARGS)
+{
+	return all_vectors(fcinfo, false);
+}
+
+static void
+append_doubles(StringInfo s, const char *key, const double *x, int64 n)
+{
+	int64		i;
+
+	appendStringInfo(s, ", \"%s\": [", key);
+	for (i = 0; i < n; i++)
+		appendStringInfo(s, "%s%s", i ? ", " : "", float8out_internal(x[i]));
+	appendStringInfoString(s, "]");
+}
+
+/* The options that the model's method used. */
+static void
+append_options(StringInfo s, const AffModelHeader *h)
+{
+	appendStringInfo(s, ", \"options\": {\"min_user_interactions\": %d, "
+					 "\"min_item_interactions\": %d",
+					 h->min_user_interactions, h->min_item_interactions);
+	if (h->method == AFF_METHOD_IMPLICIT_ALS)
+		appendStringInfo(s, ", \"factors\": %d, \"iterations\": %d, "
+						 "\"regularization\": %s, \"alpha\": %s, \"confidence\": \"%s\", "
+						 "\"epsilon\": %s, \"solver\": \"%s\", \"cg_steps\": %d, "
+						 "\"seed\": " INT64_FORMAT ", \"threads\": %d",
+						 h->factors, h->iterations,
+						 float8out_internal(h->regularization),
+						 float8out_internal(h->alpha),
+						 h->confidence == AFF_CONFIDENCE_LINEAR ? "linear" : "log",
+						 float8out_internal(h->epsilon),
+						 h->solver == AFF_SOLVER_CG ? "cg" : "cholesky",
+						 h->cg_steps, h->seed, h->threads);
+	else if (h->method == AFF_METHOD_EASE)
+		appendStringInfo(s, ", \"regularization\": %s, \"max_items\": %d, \"threads\": %d",
+						 float8out_internal(h->regularization), h->max_items, h->threads);
+	else if (h->method == AFF_METHOD_ITEM_KNN)
+		appendStringInfo(s, ", \"neighbors\": %d, \"alpha\": %s, \"confidence\": \"%s\", "
+						 "\"epsilon\": %s, \"threads\": %d",
+						 h->neighbors, float8out_internal(h->alpha),
+						 h->confidence == AFF_CONFIDENCE_LINEAR ? "linear" : "log",
+						 float8out_internal(h->epsilon), h->threads);
+	appendStringInfoString(s, "}");
+}
+
+/*
+ * Read n bytes at offset off of a stored value: a slice read for a TOAST
+ * pointer, so describe() fetches only the chunks it needs.
+ */
+static void
+read_part(struct varlena *raw, uint64 total, uint64 off, uint64 n, void *dst)
+{
+	if (off > total || n > total - off)
+		ereport(ERROR,
+				(errcode(ERRCODE_INVALID_BINARY_REPRESENTATION),
+				 errmsg("invalid affinity.model value"),
+				 errdetail("A section at byte " UINT64_FORMAT " runs past the end (" UINT64_FORMAT ").",
+						   off, total)));
+	if (VARATT_IS_EXTERNAL_ONDISK(raw))
+	{
+		struct varlena *slice = detoast_attr_slice(raw, (int32) off, (int32) n);
+
+		if (VARSIZE_ANY_EXHDR(slice) != n)
+			elog(ERROR, "short slice of an affinity.model value");
+		memcpy(dst, VARDATA_ANY(slice), n);
+		pfree(slice);
+	}
+	else
+		memcpy(dst, (char *) raw + off, n);
+}
+
+/*
+ * The header, section table and the two per-sweep arrays of argument 0,
+ * read without fetching the factors.  Offsets count from the start of the
+ * value; a slice of a TOAST pointer counts from the first data byte, hence
+ * the VARHDRSZ shift.
+ */
+static void
+read_summary(FunctionCallInfo fcinfo, AffModelHeader *h, double **loss,
+			 double **secs, int64 *n_sweeps)
+{
+	struct varlena *raw = (struct varlena *) PG_GETARG_RAW_VARLENA_P(0);
+	struct varlena *v = raw;
+	int			shift = VARHDRSZ;
+	uint64		total;
+	AffSection	table[AFF_SEC_MAX];
+	int			i;
+
+	if (!VARATT_IS_EXTERNAL_ONDISK(raw))
+	{
+		v = (struct varlena *) PG_DETOAST_DATUM(PointerGetDatum(raw));
+		shift = 0;
+		total = VARSIZE(v);
+	}
+	else
+	{
+		struct varatt_external ptr;
+
+		VARATT_EXTERNAL_GET_POINTER(ptr, raw);
+		total = ptr.va_rawsize;
+	}
+	if (total < sizeof(AffModelHeader))
+		ereport(ERROR,
+				(errcode(ERRCODE_INVALID_BINARY_REPRESENTATION),
+				 errmsg("invalid affinity.model value"),
+				 errdetail("The value has " UINT64_FORMAT " bytes, fewer than a model header.", total)));
+	read_part(v, total, 4 - (shift ? 4 : 0), sizeof(AffModelHeader) - 4, (char *) h + 4);
+	if (memcmp(h->magic, AFF_MAGIC, 4) != 0 || h->n_sections > AFF_SEC_MAX ||
+		h->total_size != total)
+		ereport(ERROR,
+				(errcode(ERRCODE_INVALID_BINARY_REPRESENTATION),
+				 errmsg("invalid affinity.model value"),
+				 errdetail("The header is damaged.")));
+	read_part(v, total, sizeof(AffModelHeader) - (shift ? 4 : 0),
+			  sizeof(AffSection) * h->n_sections, table);
+	*loss = *secs = NULL;
+	*n_sweeps = 0;
+	for (i = 0; i < h->n_sections; i++)
+	{
+		double	  **dst = table[i].kind == AFF_SEC_LOSS ? loss :
+			table[i].kind == AFF_SEC_SWEEP_SECONDS ? secs : NULL;
+
+		if (dst == NULL || table[i].count > 1000000)
+			continue;
+		*dst = palloc(sizeof(double) * (table[i].count + 1));
+		read_part(v, total, table[i].offset - (shift ? 4 : 0),
+				  sizeof(double) * table[i].count, *dst);
+		*n_sweeps = (int64) table[i].count;
+	}
+}
+
+PG_FUNCTION_INFO_V1(describe);
+
+/* describe(model) -> jsonb, from the header and per-sweep arrays only */
+Datum
+describe(PG_FUNCTION_ARGS)
+{
+	AffModelHeader hd;
+	const AffModelHeader *h = &hd;
+	double	   *loss;
+	double	   *secs;
+	int64		n_sweeps;
+	StringInfoData s;
+
+	read_summary(fcinfo, &hd, &loss, &secs, &n_sweeps);
+	initStringInfo(&s);
+	appendStringInfo(&s, "{\"format_version\": %d, \"method\": \"%s\", \"key_type\": \"bigint\", "
+					 "\"users\": " INT64_FORMAT ", \"items\": " INT64_FORMAT
+					 ", \"interactions\": " INT64_FORMAT,
+					 h->version, aff_method_name(h->method),
+					 h->n_users, h->n_items, h->nnz);
+	append_options(&s, h);
+	appendStringInfo(&s, ", \"rows_read\": " INT64_FORMAT ", \"rows_skipped_null\": " INT64_FORMAT
+					 ", \"rows_skipped_zero\": " INT64_FORMAT ", \"duplicates_summed\": " INT64_FORMAT
+					 ", \"dropped_users\": " INT64_FORMAT ", \"dropped_items\": " INT64_FORMAT
+					 ", \"dropped_interactions\": " INT64_FORMAT,
+					 h->rows_read, h->rows_skipped_null, h->rows_skipped_zero,
+					 h->duplicates_summed, h->dropped_users, h->dropped_items,
+					 h->dropped_interactions);
+	append_doubles(&s, "loss", loss, loss ? n_sweeps : 0);
+	append_doubles(&s, "sweep_seconds", secs, secs ? n_sweeps : 0);
+	appendStringInfo(&s, ", \"fit_seconds\": %s, \"peak_memory_bytes\": " INT64_FORMAT
+					 ", \"size_bytes\": " UINT64_FORMAT
+					 ", \"checksum\": \"%016llx\", \"fingerprint\": \"%016llx\"}",
+					 float8out_internal(h->fit_seconds), h->peak_memory, h->total_size,
+					 (unsigned long long) h->checksum,
+					 (unsigned long long) h->fingerprint);
+	PG_RETURN_JSONB_P(jsonb_from_cstring(s.data));
+}

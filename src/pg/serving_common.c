@@ -1,0 +1,162 @@
+/*
+ * serving_common.c
+ *		Helpers shared by the serving functions: set-returning plumbing,
+ *		argument checks, key lists to index lists, emitting a top-k.
+ */
+#include "serving_common.h"
+
+#include "catalog/pg_type.h"
+#include "funcapi.h"
+#include "utils/array.h"
+#include "utils/builtins.h"
+#include "utils/tuplestore.h"
+
+Jsonb *
+jsonb_from_cstring(const char *s)
+{
+	return DatumGetJsonbP(DirectFunctionCall1(jsonb_in, CStringGetDatum(s)));
+}
+
+void
+materialize(FunctionCallInfo fcinfo)
+{
+#if PG_VERSION_NUM >= 150001
+	InitMaterializedSRF(fcinfo, 0);
+#else
+	SetSingleFuncCall(fcinfo, 0);
+#endif
+}
+
+void
+put_row(FunctionCallInfo fcinfo, Datum *values)
+{
+	ReturnSetInfo *rsinfo = (ReturnSetInfo *) fcinfo->resultinfo;
+	bool		nulls[8] = {false, false, false, false, false, false, false, false};
+
+	tuplestore_putvalues(rsinfo->setResult, rsinfo->setDesc, values, nulls);
+}
+
+/* An argument that may not be NULL. */
+void
+require_arg(FunctionCallInfo fcinfo, int argno, const char *name)
+{
+	if (PG_ARGISNULL(argno))
+		ereport(ERROR,
+				(errcode(ERRCODE_NULL_VALUE_NOT_ALLOWED),
+				 errmsg("argument \"%s\" must not be NULL", name)));
+}
+
+/* k: not NULL, not negative; capped at limit. */
+int64
+get_k(FunctionCallInfo fcinfo, int argno, int64 limit)
+{
+	int32		k;
+
+	require_arg(fcinfo, argno, "k");
+	k = PG_GETARG_INT32(argno);
+	if (k < 0)
+		ereport(ERROR,
+				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
+				 errmsg("k must not be negative"),
+				 errdetail("k is %d.", k)));
+	return k < limit ? k : limit;
+}
+
+void
+require_factors(const AffModelView *v, const char *fn)
+{
+	if (v->item_factors == NULL)
+		ereport(ERROR,
+				(errcode(ERRCODE_FEATURE_NOT_SUPPORTED),
+				 errmsg("%s needs a model with latent factors", fn),
+				 errdetail("This model was fitted with method \"%s\".",
+						   aff_method_name(v->h->method)),
+				 errhint("Fit with method \"implicit_als\".")));
+}
+
+static int
+cmp_int32(const void *a, const void *b)
+{
+	int32		x = *(const int32 *) a;
+	int32		y = *(const int32 *) b;
+
+	return x < y ? -1 : (x > y);
+}
+
+/*
+ * Indices (into keys[0..n_keys)) of the known keys of a bigint[] argument (NULL elements and
+ * unknown keys ignored), sorted and without repeats.  *n gets the count.
+ */
+int32 *
+array_key_indices(FunctionCallInfo fcinfo, int argno, const int64 *keys, int64 n_keys,
+				  int *n)
+{
+	ArrayType  *arr = PG_GETARG_ARRAYTYPE_P(argno);
+	Datum	   *elems;
+	bool	   *nulls;
+	int			ne;
+	int32	   *idx;
+	int			i;
+	int			out = 0;
+
+	deconstruct_array(arr, INT8OID, 8, true, TYPALIGN_DOUBLE, &elems, &nulls, &ne);
+	idx = palloc(sizeof(int32) * (ne + 1));
+	for (i = 0; i < ne; i++)
+	{
+		int64		j;
+
+		if (nulls[i])
+			continue;
+		j = aff_find_key(keys, n_keys, DatumGetInt64(elems[i]));
+		if (j >= 0)
+			idx[out++] = (int32) j;
+	}
+	qsort(idx, out, sizeof(int32), cmp_int32);
+	*n = 0;
+	for (i = 0; i < out; i++)
+		if (i == 0 || idx[i] != idx[i - 1])
+			idx[(*n)++] = idx[i];
+	return idx;
+}
+
+/* Emit the heap's content as (key, score, rank) rows. */
+void
+emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const int64 *keys)
+{
+	int64		n = aff_topk_finish(t);
+	int64		r;
+
+	for (r = 0; r < n; r++)
+	{
+		Datum		values[3];
+
+		values[0] = Int64GetDatum(keys[t->heap[r].index]);
+		values[1] = Float4GetDatum(t->heap[r].score);
+		values[2] = Int32GetDatum((int32) (r + 1));
+		put_row(fcinfo, values);
+	}
+}
+
+float
+dot_f(const float *a, const float *b, int f)
+{
+	float		s = 0;
+	int			k;
+
+	for (k = 0; k < f; k++)
+		s += a[k] * b[k];
+	return s;
+}
+
+
+ArrayType *
+vector_array(const float *x, int f)
+{
+	Datum	   *d = palloc(sizeof(Datum) * f);
+	int			k;
+
+	for (k = 0; k < f; k++)
+		d[k] = Float4GetDatum(x[k]);
+	return construct_array(d, f, FLOAT4OID, 4, true, TYPALIGN_INT);
+}
+

@@ -1,0 +1,26 @@
+/*
+ * serving_common.h
+ *		Helpers shared by the serving functions.
+ */
+#ifndef AFFINITY_SERVING_COMMON_H
+#define AFFINITY_SERVING_COMMON_H
+
+#include "affinity_pg.h"
+
+#include "utils/array.h"
+
+#include "../core/interactions.h"
+#include "../core/topk.h"
+
+extern void materialize(FunctionCallInfo fcinfo);
+extern void put_row(FunctionCallInfo fcinfo, Datum *values);
+extern void require_arg(FunctionCallInfo fcinfo, int argno, const char *name);
+extern int64 get_k(FunctionCallInfo fcinfo, int argno, int64 limit);
+extern void require_factors(const AffModelView *v, const char *fn);
+extern int32 *array_key_indices(FunctionCallInfo fcinfo, int argno,
+								const int64 *keys, int64 n_keys, int *n);
+extern void emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const int64 *keys);
+extern float dot_f(const float *a, const float *b, int f);
+extern ArrayType *vector_array(const float *x, int f);
+
+#endif
