@@ -19,6 +19,7 @@ OBJS = \
 	src/pg/serving.o \
 	src/pg/batch.o \
 	src/pg/inspect.o \
+	src/pg/metrics.o \
 	src/pg/weights.o
 
 EXTENSION = affinity
@@ -26,7 +27,7 @@ EXTVERSION = 1.0
 DATA = src/affinity--1.0.sql
 PGFILEDESC = "affinity - recommendation models in SQL"
 
-REGRESS = type fit serving batch errors
+REGRESS = type fit serving batch metrics errors
 REGRESS_OPTS = --inputdir=. --outputdir=. --load-extension=affinity
 
 BLAS_CFLAGS := $(shell pkg-config --cflags openblas 2>/dev/null)

@@ -118,6 +118,48 @@ CREATE FUNCTION affinity.item_vectors(model affinity.model)
 	AS 'MODULE_PATHNAME', 'item_vectors' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE
 	COST 10000 ROWS 1000;
 
+-- Evaluation -------------------------------------------------------------
+
+CREATE FUNCTION affinity.ranking_metrics_transfn(internal, affinity.model, bigint, bigint, integer)
+	RETURNS internal
+	AS 'MODULE_PATHNAME', 'ranking_metrics_transfn' LANGUAGE C PARALLEL SAFE;
+CREATE FUNCTION affinity.ranking_metrics_transfn(internal, affinity.model, bigint, bigint)
+	RETURNS internal
+	AS 'MODULE_PATHNAME', 'ranking_metrics_transfn' LANGUAGE C PARALLEL SAFE;
+CREATE FUNCTION affinity.ranking_metrics_combinefn(internal, internal)
+	RETURNS internal
+	AS 'MODULE_PATHNAME', 'ranking_metrics_combinefn' LANGUAGE C PARALLEL SAFE;
+CREATE FUNCTION affinity.ranking_metrics_serialfn(internal)
+	RETURNS bytea
+	AS 'MODULE_PATHNAME', 'ranking_metrics_serialfn' LANGUAGE C STRICT PARALLEL SAFE;
+CREATE FUNCTION affinity.ranking_metrics_deserialfn(bytea, internal)
+	RETURNS internal
+	AS 'MODULE_PATHNAME', 'ranking_metrics_deserialfn' LANGUAGE C STRICT PARALLEL SAFE;
+CREATE FUNCTION affinity.ranking_metrics_finalfn(internal)
+	RETURNS jsonb
+	AS 'MODULE_PATHNAME', 'ranking_metrics_finalfn' LANGUAGE C PARALLEL SAFE;
+
+CREATE AGGREGATE affinity.ranking_metrics(model affinity.model, user_id bigint, item_id bigint, k integer) (
+	SFUNC = affinity.ranking_metrics_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.ranking_metrics_finalfn,
+	COMBINEFUNC = affinity.ranking_metrics_combinefn,
+	SERIALFUNC = affinity.ranking_metrics_serialfn,
+	DESERIALFUNC = affinity.ranking_metrics_deserialfn,
+	PARALLEL = SAFE
+);
+CREATE AGGREGATE affinity.ranking_metrics(model affinity.model, user_id bigint, item_id bigint) (
+	SFUNC = affinity.ranking_metrics_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.ranking_metrics_finalfn,
+	COMBINEFUNC = affinity.ranking_metrics_combinefn,
+	SERIALFUNC = affinity.ranking_metrics_serialfn,
+	DESERIALFUNC = affinity.ranking_metrics_deserialfn,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.ranking_metrics(affinity.model, bigint, bigint) IS 'ranking metrics at k = 10 over held-out (user, item) rows';
+COMMENT ON AGGREGATE affinity.ranking_metrics(affinity.model, bigint, bigint, integer) IS 'precision, recall, NDCG, MAP, hit rate and coverage at k over held-out (user, item) rows';
+
 CREATE FUNCTION affinity.describe(model affinity.model)
 	RETURNS jsonb
 	AS 'MODULE_PATHNAME', 'describe' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;

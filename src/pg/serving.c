@@ -27,7 +27,7 @@
  * implicit_als, the training items' weights for ease and item_knn,
  * popularity otherwise.
  */
-static void
+void
 user_scores(const AffModelView *v, int64 u, float *scores)
 {
 	int64		lo = v->seen_ptr[u];

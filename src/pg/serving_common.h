@@ -22,5 +22,6 @@ extern int32 *array_key_indices(FunctionCallInfo fcinfo, int argno,
 extern void emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const int64 *keys);
 extern float dot_f(const float *a, const float *b, int f);
 extern ArrayType *vector_array(const float *x, int f);
+extern void user_scores(const AffModelView *v, int64 u, float *scores);
 
 #endif

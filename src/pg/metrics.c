@@ -1,0 +1,397 @@
+/*
+ * metrics.c
+ *		affinity.ranking_metrics: an aggregate over held-out (user, item)
+ *		rows that ranks each held-out user as top_items does (training items
+ *		excluded) and averages ranking metrics over users.
+ *
+ * Binary relevance: an item is relevant to a user when it is among the
+ * user's held-out items.  Held-out items the user already has in training
+ * are left out (the ranking never shows them); users left with no relevant
+ * item are counted in "users_without_new_items" and not averaged.  Users the
+ * model does not know are counted in "unknown_users" and not averaged.
+ * Definitions (README): precision@k = hits / k; recall@k = hits / |R|;
+ * NDCG@k with binary gains and a log2 discount (Jarvelin and Kekalainen
+ * 2002); MAP@k = sum over hit ranks r of precision@r, divided by
+ * min(k, |R|); hit rate = share of users with a hit; coverage = distinct
+ * recommended items / catalogue size.
+ *
+ * The state keeps the model argument as it came (a TOAST pointer is a few
+ * bytes) and the pairs in a growing array; combine appends, serialize
+ * writes both, so PostgreSQL can feed the aggregate from a parallel scan.
+ */
+#include "serving_common.h"
+
+#include <math.h>
+
+#include "libpq/pqformat.h"
+#include "miscadmin.h"
+#include "utils/float.h"
+#include "utils/memutils.h"
+
+typedef struct HeldOut
+{
+	int64		user;
+	int64		item;
+} HeldOut;
+
+typedef struct MetricsState
+{
+	MemoryContext cxt;
+	struct varlena *model;		/* raw argument, copied once */
+	int32		k;
+	HeldOut    *pairs;
+	int64		n;
+	int64		cap;
+} MetricsState;
+
+static MetricsState *
+state_new(MemoryContext cxt)
+{
+	MetricsState *st = MemoryContextAllocZero(cxt, sizeof(MetricsState));
+
+	st->cxt = cxt;
+	st->k = -1;
+	return st;
+}
+
+static void
+state_add(MetricsState *st, int64 user, int64 item)
+{
+	if (st->n == st->cap)
+	{
+		int64		cap = st->cap ? st->cap * 2 : 1024;
+
+		if (cap > (int64) (MaxAllocHugeSize / sizeof(HeldOut)))
+			ereport(ERROR,
+					(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
+					 errmsg("too many held-out rows for one affinity.ranking_metrics")));
+		st->pairs = st->pairs
+			? repalloc_huge(st->pairs, sizeof(HeldOut) * cap)
+			: MemoryContextAllocHuge(st->cxt, sizeof(HeldOut) * cap);
+		st->cap = cap;
+	}
+	st->pairs[st->n].user = user;
+	st->pairs[st->n].item = item;
+	st->n++;
+}
+
+/* Keep the first model and k; every row must bring the same k. */
+static void
+state_set_model(MetricsState *st, struct varlena *raw, int32 k)
+{
+	if (st->model == NULL)
+	{
+		Size		len = VARSIZE_ANY(raw);
+
+		if (k < 0)
+			ereport(ERROR,
+					(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
+					 errmsg("k must not be negative"),
+					 errdetail("k is %d.", k)));
+		st->model = MemoryContextAllocHuge(st->cxt, len);
+		memcpy(st->model, raw, len);
+		st->k = k;
+	}
+	else if (st->k != k)
+		ereport(ERROR,
+				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
+				 errmsg("k must be the same on every row of affinity.ranking_metrics"),
+				 errdetail("k changed from %d to %d.", st->k, k)));
+}
+
+PG_FUNCTION_INFO_V1(ranking_metrics_transfn);
+
+/* (state, model, user_id, item_id [, k = 10]) -> state; NULL rows are skipped */
+Datum
+ranking_metrics_transfn(PG_FUNCTION_ARGS)
+{
+	MemoryContext aggcxt;
+	MetricsState *st;
+
+	if (!AggCheckCallContext(fcinfo, &aggcxt))
+		elog(ERROR, "ranking_metrics_transfn called in non-aggregate context");
+	st = PG_ARGISNULL(0) ? state_new(aggcxt) : (MetricsState *) PG_GETARG_POINTER(0);
+	if (PG_ARGISNULL(1) || PG_ARGISNULL(2) || PG_ARGISNULL(3))
+		PG_RETURN_POINTER(st);
+	if (PG_NARGS() > 4 && PG_ARGISNULL(4))
+		ereport(ERROR,
+				(errcode(ERRCODE_NULL_VALUE_NOT_ALLOWED),
+				 errmsg("argument \"k\" must not be NULL")));
+	state_set_model(st, (struct varlena *) PG_GETARG_RAW_VARLENA_P(1),
+					PG_NARGS() > 4 ? PG_GETARG_INT32(4) : 10);
+	state_add(st, PG_GETARG_INT64(2), PG_GETARG_INT64(3));
+	PG_RETURN_POINTER(st);
+}
+
+PG_FUNCTION_INFO_V1(ranking_metrics_combinefn);
+
+Datum
+ranking_metrics_combinefn(PG_FUNCTION_ARGS)
+{
+	MemoryContext aggcxt;
+	MetricsState *a;
+	MetricsState *b;
+	int64		i;
+
+	if (!AggCheckCallContext(fcinfo, &aggcxt))
+		elog(ERROR, "ranking_metrics_combinefn called in non-aggregate context");
+	if (PG_ARGISNULL(1))
+		PG_RETURN_POINTER(PG_ARGISNULL(0) ? NULL : PG_GETARG_POINTER(0));
+	b = (MetricsState *) PG_GETARG_POINTER(1);
+	a = PG_ARGISNULL(0) ? state_new(aggcxt) : (MetricsState *) PG_GETARG_POINTER(0);
+	if (b->model != NULL)
+		state_set_model(a, b->model, b->k);
+	for (i = 0; i < b->n; i++)
+		state_add(a, b->pairs[i].user, b->pairs[i].item);
+	PG_RETURN_POINTER(a);
+}
+
+PG_FUNCTION_INFO_V1(ranking_metrics_serialfn);
+
+Datum
+ranking_metrics_serialfn(PG_FUNCTION_ARGS)
+{
+	MetricsState *st = (MetricsState *) PG_GETARG_POINTER(0);
+	StringInfoData buf;
+	int64		i;
+
+	pq_begintypsend(&buf);
+	pq_sendint32(&buf, st->k);
+	pq_sendint32(&buf, st->model ? (int32) VARSIZE_ANY(st->model) : 0);
+	if (st->model)
+		pq_sendbytes(&buf, (char *) st->model, VARSIZE_ANY(st->model));
+	pq_sendint64(&buf, st->n);
+	for (i = 0; i < st->n; i++)
+	{
+		pq_sendint64(&buf, st->pairs[i].user);
+		pq_sendint64(&buf, st->pairs[i].item);
+	}
+	PG_RETURN_BYTEA_P(pq_endtypsend(&buf));
+}
+
+PG_FUNCTION_INFO_V1(ranking_metrics_deserialfn);
+
+Datum
+ranking_metrics_deserialfn(PG_FUNCTION_ARGS)
+{
+	bytea	   *b = PG_GETARG_BYTEA_PP(0);
+	MemoryContext aggcxt;
+	MetricsState *st;
+	StringInfoData buf;
+	int32		len;
+	int64		n;
+	int64		i;
+
+	if (!AggCheckCallContext(fcinfo, &aggcxt))
+		elog(ERROR, "ranking_metrics_deserialfn called in non-aggregate context");
+	st = state_new(aggcxt);
+	buf.data = VARDATA_ANY(b);
+	buf.len = VARSIZE_ANY_EXHDR(b);
+	buf.maxlen = 0;
+	buf.cursor = 0;
+	st->k = pq_getmsgint(&buf, 4);
+	len = pq_getmsgint(&buf, 4);
+	if (len > 0)
+	{
+		st->model = MemoryContextAllocHuge(aggcxt, len);
+		memcpy(st->model, pq_getmsgbytes(&buf, len), len);
+	}
+	n = pq_getmsgint64(&buf);
+	for (i = 0; i < n; i++)
+	{
+		int64		u = pq_getmsgint64(&buf);
+
+		state_add(st, u, pq_getmsgint64(&buf));
+	}
+	pq_getmsgend(&buf);
+	PG_RETURN_POINTER(st);
+}
+
+static int
+cmp_heldout(const void *a, const void *b)
+{
+	const HeldOut *x = a;
+	const HeldOut *y = b;
+
+	if (x->user != y->user)
+		return x->user < y->user ? -1 : 1;
+	return x->item < y->item ? -1 : (x->item > y->item);
+}
+
+typedef struct Sums
+{
+	int64		users;
+	int64		unknown;
+	int64		without_new;
+	double		precision;
+	double		recall;
+	double		ndcg;
+	double		map;
+	double		hits;
+	int64		covered;
+} Sums;
+
+/*
+ * Score one known user: rel[] marks the user's relevant item indices
+ * (n_rel of them); shown[] collects recommended items for coverage.
+ */
+static void
+score_user(const AffModelView *v, int64 u, int64 k, const uint8 *rel, int64 n_rel,
+		   float *scores, uint8 *shown, Sums *s)
+{
+	AffTopK		t;
+	int64		kk = Min(k, v->h->n_items);
+	AffScored  *heap = palloc_extended(sizeof(AffScored) * Max(kk, 1), MCXT_ALLOC_HUGE);
+	const int32 *seen = v->seen_items + v->seen_ptr[u];
+	const int32 *seen_end = v->seen_items + v->seen_ptr[u + 1];
+	double		dcg = 0;
+	double		idcg = 0;
+	double		ap = 0;
+	int64		hits = 0;
+	int64		n;
+	int64		r;
+	int32		i;
+
+	user_scores(v, u, scores);
+	aff_topk_init(&t, heap, kk);
+	for (i = 0; i < (int32) v->h->n_items; i++)
+	{
+		if (seen < seen_end && *seen == i)
+		{
+			seen++;
+			continue;
+		}
+		aff_topk_push(&t, scores[i], i);
+	}
+	n = aff_topk_finish(&t);
+	for (r = 0; r < n; r++)
+	{
+		int32		it = heap[r].index;
+
+		if (!shown[it])
+		{
+			shown[it] = 1;
+			s->covered++;
+		}
+		if (rel[it])
+		{
+			hits++;
+			dcg += 1.0 / log2((double) r + 2.0);
+			ap += (double) hits / (double) (r + 1);
+		}
+	}
+	for (r = 0; r < Min(k, n_rel); r++)
+		idcg += 1.0 / log2((double) r + 2.0);
+	s->users++;
+	s->precision += (double) hits / (double) k;
+	s->recall += (double) hits / (double) n_rel;
+	s->ndcg += idcg > 0 ? dcg / idcg : 0;
+	s->map += ap / (double) Min(k, n_rel);
+	s->hits += hits > 0 ? 1 : 0;
+	pfree(heap);
+}
+
+/*
+ * Walk the sorted pairs user by user; rel is a mask over item indices that
+ * is set and cleared per user.
+ */
+static void
+evaluate(const AffModelView *v, HeldOut *pairs, int64 n, int64 k, Sums *s)
+{
+	uint8	   *rel = palloc0(v->h->n_items);
+	uint8	   *shown = palloc0(v->h->n_items);
+	float	   *scores = palloc_extended(sizeof(float) * v->h->n_items, MCXT_ALLOC_HUGE);
+	int64		a = 0;
+
+	qsort(pairs, n, sizeof(HeldOut), cmp_heldout);
+	while (a < n)
+	{
+		int64		b = a;
+		int64		u;
+		int64		n_rel = 0;
+		int64		j;
+
+		CHECK_FOR_INTERRUPTS();
+		while (b < n && pairs[b].user == pairs[a].user)
+			b++;
+		u = aff_find_key(v->user_keys, v->h->n_users, pairs[a].user);
+		if (u < 0)
+		{
+			s->unknown++;
+			a = b;
+			continue;
+		}
+		for (j = v->seen_ptr[u]; j < v->seen_ptr[u + 1]; j++)
+			rel[v->seen_items[j]] = 2;	/* in training: not relevant */
+		for (j = a; j < b; j++)
+		{
+			int64		it = aff_find_key(v->item_keys, v->h->n_items, pairs[j].item);
+
+			/* items new to the catalogue are relevant but never shown */
+			if (j > a && pairs[j].item == pairs[j - 1].item)
+				continue;
+			if (it < 0)
+				n_rel++;
+			else if (rel[it] == 0)
+			{
+				rel[it] = 1;
+				n_rel++;
+			}
+		}
+		if (n_rel == 0)
+			s->without_new++;
+		else
+			score_user(v, u, k, rel, n_rel, scores, shown, s);
+		for (j = v->seen_ptr[u]; j < v->seen_ptr[u + 1]; j++)
+			rel[v->seen_items[j]] = 0;
+		for (j = a; j < b; j++)
+		{
+			int64		it = aff_find_key(v->item_keys, v->h->n_items, pairs[j].item);
+
+			if (it >= 0)
+				rel[it] = 0;
+		}
+		a = b;
+	}
+}
+
+PG_FUNCTION_INFO_V1(ranking_metrics_finalfn);
+
+Datum
+ranking_metrics_finalfn(PG_FUNCTION_ARGS)
+{
+	MetricsState *st;
+	AffModelView v;
+	AffError	err;
+	struct varlena *m;
+	Sums		s;
+	StringInfoData out;
+	double		nu;
+
+	if (PG_ARGISNULL(0))
+		PG_RETURN_NULL();
+	st = (MetricsState *) PG_GETARG_POINTER(0);
+	if (st->model == NULL)
+		PG_RETURN_NULL();
+	m = (struct varlena *) PG_DETOAST_DATUM_COPY(PointerGetDatum(st->model));
+	if (aff_model_view((const uint8 *) m, VARSIZE(m), &v, &err) != AFF_OK)
+		report_engine_error(&err);
+	if (st->k == 0)
+		ereport(ERROR,
+				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
+				 errmsg("k must be at least 1 for ranking metrics")));
+	memset(&s, 0, sizeof(s));
+	evaluate(&v, st->pairs, st->n, st->k, &s);
+	nu = s.users > 0 ? (double) s.users : 1.0;
+	initStringInfo(&out);
+	appendStringInfo(&out, "{\"users\": " INT64_FORMAT ", \"k\": %d, \"precision\": %s, "
+					 "\"recall\": %s, \"ndcg\": %s, \"map\": %s, \"hit_rate\": %s, "
+					 "\"coverage\": %s, \"unknown_users\": " INT64_FORMAT
+					 ", \"users_without_new_items\": " INT64_FORMAT "}",
+					 s.users, st->k, float8out_internal(s.precision / nu),
+					 float8out_internal(s.recall / nu), float8out_internal(s.ndcg / nu),
+					 float8out_internal(s.map / nu), float8out_internal(s.hits / nu),
+					 float8out_internal((double) s.covered / (double) v.h->n_items),
+					 s.unknown, s.without_new);
+	PG_RETURN_JSONB_P(jsonb_from_cstring(out.data));
+}
