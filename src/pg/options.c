@@ -24,7 +24,7 @@
 double
 method_default_regularization(int method)
 {
-	return method == AFF_METHOD_EASE ? 500.0 : 0.1;
+	return method == AFF_METHOD_EASE ? 500.0 : 30.0;
 }
 
 static void
