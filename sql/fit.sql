@@ -106,3 +106,32 @@ FROM (SELECT affinity.describe(model) AS d FROM fit_pop) s;
 SELECT t.item_id, t.score, t.rank,
        (SELECT count(DISTINCT user_id) FROM fit_buys b WHERE b.item_id = t.item_id) AS buyers
 FROM fit_pop, affinity.top_items(model, 999, 5) t ORDER BY t.rank;
+
+-- parallel input: a parallel scan feeds partial states that are combined,
+-- and the model is the same as without workers
+CREATE TABLE fit_many AS
+SELECT (abs(hashint4(g)) % 3000)::bigint AS user_id, (abs(hashint4(g * 7 + 1)) % 300)::bigint AS item_id,
+       (1 + g % 4)::real AS weight
+FROM generate_series(1, 60000) g;
+ANALYZE fit_many;
+SET max_parallel_workers_per_gather = 0;
+CREATE TABLE fit_serial AS
+SELECT affinity.describe(affinity.fit(user_id, item_id, weight, '{"factors": 8, "iterations": 2, "threads": 1}')) AS d
+FROM fit_many;
+SET max_parallel_workers_per_gather = 2;
+SET parallel_setup_cost = 0;
+SET parallel_tuple_cost = 0;
+SET min_parallel_table_scan_size = 0;
+SET parallel_leader_participation = off;
+EXPLAIN (COSTS OFF)
+SELECT affinity.fit(user_id, item_id, weight, '{"factors": 8, "iterations": 2, "threads": 1}') FROM fit_many;
+SELECT s.d->>'fingerprint' = p.d->>'fingerprint' AS same_model,
+       p.d->'rows_read' AS rows_read, p.d->'duplicates_summed' AS duplicates
+FROM fit_serial s,
+     (SELECT affinity.describe(affinity.fit(user_id, item_id, weight, '{"factors": 8, "iterations": 2, "threads": 1}')) AS d
+      FROM fit_many) p;
+RESET max_parallel_workers_per_gather;
+RESET parallel_setup_cost;
+RESET parallel_tuple_cost;
+RESET min_parallel_table_scan_size;
+RESET parallel_leader_participation;

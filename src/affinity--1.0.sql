@@ -38,17 +38,32 @@ CREATE FUNCTION affinity.fit_transfn(internal, bigint, bigint, real, jsonb)
 CREATE FUNCTION affinity.fit_finalfn(internal)
 	RETURNS affinity.model
 	AS 'MODULE_PATHNAME', 'affinity_fit_finalfn' LANGUAGE C PARALLEL SAFE;
+CREATE FUNCTION affinity.fit_combinefn(internal, internal)
+	RETURNS internal
+	AS 'MODULE_PATHNAME', 'affinity_fit_combinefn' LANGUAGE C PARALLEL SAFE;
+CREATE FUNCTION affinity.fit_serialfn(internal)
+	RETURNS bytea
+	AS 'MODULE_PATHNAME', 'affinity_fit_serialfn' LANGUAGE C STRICT PARALLEL SAFE;
+CREATE FUNCTION affinity.fit_deserialfn(bytea, internal)
+	RETURNS internal
+	AS 'MODULE_PATHNAME', 'affinity_fit_deserialfn' LANGUAGE C STRICT PARALLEL SAFE;
 
 CREATE AGGREGATE affinity.fit(user_id bigint, item_id bigint, weight real) (
 	SFUNC = affinity.fit_transfn,
 	STYPE = internal,
 	FINALFUNC = affinity.fit_finalfn,
+	COMBINEFUNC = affinity.fit_combinefn,
+	SERIALFUNC = affinity.fit_serialfn,
+	DESERIALFUNC = affinity.fit_deserialfn,
 	PARALLEL = SAFE
 );
 CREATE AGGREGATE affinity.fit(user_id bigint, item_id bigint, weight real, options jsonb) (
 	SFUNC = affinity.fit_transfn,
 	STYPE = internal,
 	FINALFUNC = affinity.fit_finalfn,
+	COMBINEFUNC = affinity.fit_combinefn,
+	SERIALFUNC = affinity.fit_serialfn,
+	DESERIALFUNC = affinity.fit_deserialfn,
 	PARALLEL = SAFE
 );
 COMMENT ON AGGREGATE affinity.fit(bigint, bigint, real) IS 'fit a model over (user, item, weight) rows with default options';

@@ -24,6 +24,9 @@ cmp_triple(const void *a, const void *b)
 		return x->user < y->user ? -1 : 1;
 	if (x->item != y->item)
 		return x->item < y->item ? -1 : 1;
+	/* equal keys in weight order: duplicates are summed in a fixed order */
+	if (x->weight != y->weight)
+		return x->weight < y->weight ? -1 : 1;
 	return 0;
 }
 

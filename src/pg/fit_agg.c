@@ -14,6 +14,7 @@
 
 #include <math.h>
 
+#include "libpq/pqformat.h"
 #include "miscadmin.h"
 #include "portability/instr_time.h"
 #include "utils/memutils.h"
@@ -67,6 +68,7 @@ fit_state_new(FunctionCallInfo fcinfo, MemoryContext aggcxt)
 		fit_options_parse(PG_GETARG_JSONB_P(4), &st->opts);
 	else
 		fit_options_parse(NULL, &st->opts);
+	st->have_options = true;
 	MemoryContextSwitchTo(old);
 	return st;
 }
@@ -110,6 +112,140 @@ affinity_fit_transfn(PG_FUNCTION_ARGS)
 	st->rows[st->n_rows].item = PG_GETARG_INT64(2);
 	st->rows[st->n_rows].weight = w;
 	st->n_rows++;
+	PG_RETURN_POINTER(st);
+}
+
+/* Append n rows to st, growing it as needed. */
+static void
+append_rows(FitState *st, const AffTriple *rows, int64 n)
+{
+	while (st->cap_rows - st->n_rows < n)
+		grow_rows(st);
+	if (n > 0)
+		memcpy(st->rows + st->n_rows, rows, sizeof(AffTriple) * n);
+	st->n_rows += n;
+}
+
+/* Options and counters of b are merged into a (a fresh state takes b's). */
+static void
+merge_counts(FitState *a, const FitState *b)
+{
+	if (!a->have_options)
+	{
+		a->opts = b->opts;
+		a->have_options = b->have_options;
+	}
+	a->rows_read += b->rows_read;
+	a->rows_null += b->rows_null;
+	a->rows_zero += b->rows_zero;
+}
+
+PG_FUNCTION_INFO_V1(affinity_fit_combinefn);
+
+/*
+ * Combine two partial states (parallel aggregation).  The order of rows
+ * does not matter: the final step sorts them, duplicates included.
+ */
+Datum
+affinity_fit_combinefn(PG_FUNCTION_ARGS)
+{
+	MemoryContext aggcxt;
+	FitState   *a;
+	FitState   *b;
+
+	if (!AggCheckCallContext(fcinfo, &aggcxt))
+		elog(ERROR, "affinity_fit_combinefn called in non-aggregate context");
+	if (PG_ARGISNULL(1))
+		PG_RETURN_POINTER(PG_ARGISNULL(0) ? NULL : PG_GETARG_POINTER(0));
+	b = (FitState *) PG_GETARG_POINTER(1);
+	if (PG_ARGISNULL(0))
+	{
+		a = MemoryContextAllocZero(aggcxt, sizeof(FitState));
+		a->cxt = aggcxt;
+	}
+	else
+		a = (FitState *) PG_GETARG_POINTER(0);
+	merge_counts(a, b);
+	append_rows(a, b->rows, b->n_rows);
+	PG_RETURN_POINTER(a);
+}
+
+PG_FUNCTION_INFO_V1(affinity_fit_serialfn);
+
+/* Partial state -> bytea: options, counters, then the rows. */
+Datum
+affinity_fit_serialfn(PG_FUNCTION_ARGS)
+{
+	FitState   *st = (FitState *) PG_GETARG_POINTER(0);
+	StringInfoData buf;
+	double		bytes = (double) st->n_rows * (2 * sizeof(int64) + sizeof(float4)) + 1024;
+	int64		i;
+
+	if (bytes > (double) (MaxAllocSize - VARHDRSZ))
+		ereport(ERROR,
+				(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
+				 errmsg("a parallel worker's share of affinity.fit is too large to pass on"),
+				 errdetail("The worker holds " INT64_FORMAT " rows; a serialized state is at most 1 GB.",
+						   st->n_rows),
+				 errhint("Run the fit without parallel workers: SET max_parallel_workers_per_gather = 0.")));
+	pq_begintypsend(&buf);
+	pq_sendint8(&buf, st->have_options ? 1 : 0);
+	pq_sendbytes(&buf, (const char *) &st->opts, sizeof(FitOptions));
+	pq_sendint64(&buf, st->rows_read);
+	pq_sendint64(&buf, st->rows_null);
+	pq_sendint64(&buf, st->rows_zero);
+	pq_sendint64(&buf, st->n_rows);
+	for (i = 0; i < st->n_rows; i++)
+	{
+		pq_sendint64(&buf, st->rows[i].user);
+		pq_sendint64(&buf, st->rows[i].item);
+		pq_sendfloat4(&buf, st->rows[i].weight);
+	}
+	PG_RETURN_BYTEA_P(pq_endtypsend(&buf));
+}
+
+PG_FUNCTION_INFO_V1(affinity_fit_deserialfn);
+
+/*
+ * bytea -> partial state.  The bytes come from our own serialfn in a
+ * worker of the same server, so a plain memory copy of FitOptions is safe.
+ */
+Datum
+affinity_fit_deserialfn(PG_FUNCTION_ARGS)
+{
+	bytea	   *b = PG_GETARG_BYTEA_PP(0);
+	MemoryContext aggcxt;
+	FitState   *st;
+	StringInfoData buf;
+	int64		n;
+	int64		i;
+
+	if (!AggCheckCallContext(fcinfo, &aggcxt))
+		elog(ERROR, "affinity_fit_deserialfn called in non-aggregate context");
+	st = MemoryContextAllocZero(aggcxt, sizeof(FitState));
+	st->cxt = aggcxt;
+	buf.data = VARDATA_ANY(b);
+	buf.len = VARSIZE_ANY_EXHDR(b);
+	buf.maxlen = 0;
+	buf.cursor = 0;
+	st->have_options = pq_getmsgbyte(&buf) != 0;
+	memcpy(&st->opts, pq_getmsgbytes(&buf, sizeof(FitOptions)), sizeof(FitOptions));
+	st->rows_read = pq_getmsgint64(&buf);
+	st->rows_null = pq_getmsgint64(&buf);
+	st->rows_zero = pq_getmsgint64(&buf);
+	n = pq_getmsgint64(&buf);
+	if (n < 0 || n > (buf.len - buf.cursor) / 20)
+		elog(ERROR, "invalid serialized affinity.fit state");
+	while (st->cap_rows < n)
+		grow_rows(st);
+	for (i = 0; i < n; i++)
+	{
+		st->rows[i].user = pq_getmsgint64(&buf);
+		st->rows[i].item = pq_getmsgint64(&buf);
+		st->rows[i].weight = pq_getmsgfloat4(&buf);
+	}
+	st->n_rows = n;
+	pq_getmsgend(&buf);
 	PG_RETURN_POINTER(st);
 }
 
@@ -308,6 +444,7 @@ fit_model(FitState *st)
 	AffError	err;
 	instr_time	t0;
 	bytea	   *model;
+	double		peak;
 
 	INSTR_TIME_SET_CURRENT(t0);
 	/* users and items are at most the rows until the matrix says */
@@ -318,6 +455,7 @@ fit_model(FitState *st)
 		report_engine_error(&err);
 	check_memory(st, m.nnz, m.n_users, m.n_items);
 	/* the rows are not needed any more */
+	peak = (double) st->cap_rows * sizeof(AffTriple) + MemoryContextMemAllocated(work, true);
 	pfree(st->rows);
 	st->rows = NULL;
 	st->n_rows = st->cap_rows = 0;
@@ -344,6 +482,14 @@ fit_model(FitState *st)
 	}
 
 	parts.h.fit_seconds = seconds_since(t0);
+	{
+		uint64		model_bytes = 0;
+
+		/* at the end: the work context, plus the model and the executor's copy */
+		(void) aff_model_size(&parts, &model_bytes, &err);
+		peak = Max(peak, (double) MemoryContextMemAllocated(work, true) + 2.0 * model_bytes);
+		parts.h.peak_memory = (int64) peak;
+	}
 	MemoryContextSwitchTo(st->cxt);
 	model = model_build(&parts);
 	MemoryContextSwitchTo(old);
