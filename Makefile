@@ -20,14 +20,15 @@ OBJS = \
 	src/pg/batch.o \
 	src/pg/inspect.o \
 	src/pg/metrics.o \
+	src/pg/erase.o \
 	src/pg/weights.o
 
 EXTENSION = affinity
-EXTVERSION = 1.0
-DATA = src/affinity--1.0.sql
+EXTVERSION = 1.1
+DATA = src/affinity--1.0.sql src/affinity--1.0--1.1.sql
 PGFILEDESC = "affinity - recommendation models in SQL"
 
-REGRESS = type fit serving batch metrics errors
+REGRESS = type fit serving batch metrics registry errors upgrade
 REGRESS_OPTS = --inputdir=. --outputdir=. --load-extension=affinity
 
 BLAS_CFLAGS := $(shell pkg-config --cflags openblas 2>/dev/null)
