@@ -17,6 +17,7 @@
 #include "libpq/pqformat.h"
 #include "miscadmin.h"
 #include "portability/instr_time.h"
+#include "utils/ps_status.h"
 #include "utils/memutils.h"
 
 #include "../core/als.h"
@@ -373,6 +374,16 @@ seconds_since(instr_time start)
 	return INSTR_TIME_GET_DOUBLE(now);
 }
 
+/*
+ * Show the fit's phase in the process title (ps, top), so an operator can
+ * follow a long fit from outside; the title is put back when the fit ends.
+ */
+static void
+show_phase(const char *phase)
+{
+	set_ps_display(phase);
+}
+
 /* Run the ALS sweeps, reporting progress; fills the factor sections. */
 static void
 run_als(const FitState *st, const AffMatrix *m, AffModelParts *parts,
@@ -405,6 +416,7 @@ run_als(const FitState *st, const AffMatrix *m, AffModelParts *parts,
 		AffStatus	rc;
 
 		CHECK_FOR_INTERRUPTS();
+		show_phase(psprintf("affinity.fit sweep %d of %d", s + 1, o->iterations));
 		INSTR_TIME_SET_CURRENT(t0);
 		rc = aff_als_sweep(als, &loss[s], poll_interrupts, NULL, &err);
 		if (rc == AFF_ERR_CANCELLED)
@@ -445,8 +457,16 @@ fit_model(FitState *st)
 	instr_time	t0;
 	bytea	   *model;
 	double		peak;
+	char	   *saved_title;
 
 	INSTR_TIME_SET_CURRENT(t0);
+	{
+		int			len;
+		const char *cur = get_ps_display(&len);
+
+		saved_title = pnstrdup(cur, len);
+	}
+	show_phase("affinity.fit building the interaction matrix");
 	/* users and items are at most the rows until the matrix says */
 	check_memory(st, st->n_rows, Min(st->n_rows, AFF_MAX_ENTITIES),
 				 Min(st->n_rows, AFF_MAX_ENTITIES));
@@ -481,6 +501,7 @@ fit_model(FitState *st)
 			break;
 	}
 
+	show_phase("affinity.fit writing the model");
 	parts.h.fit_seconds = seconds_since(t0);
 	{
 		uint64		model_bytes = 0;
@@ -492,6 +513,7 @@ fit_model(FitState *st)
 	}
 	MemoryContextSwitchTo(st->cxt);
 	model = model_build(&parts);
+	set_ps_display(saved_title);	/* saved_title lives in work */
 	MemoryContextSwitchTo(old);
 	MemoryContextDelete(work);
 	return model;
