@@ -21,6 +21,7 @@ OBJS = \
 	src/pg/inspect.o \
 	src/pg/metrics.o \
 	src/pg/erase.o \
+	src/pg/text_keys.o \
 	src/pg/weights.o
 
 EXTENSION = affinity
@@ -28,7 +29,7 @@ EXTVERSION = 1.1
 DATA = src/affinity--1.0.sql src/affinity--1.0--1.1.sql
 PGFILEDESC = "affinity - recommendation models in SQL"
 
-REGRESS = type fit serving batch metrics registry errors upgrade
+REGRESS = type fit serving batch metrics registry text_keys errors upgrade
 REGRESS_OPTS = --inputdir=. --outputdir=. --load-extension=affinity
 
 BLAS_CFLAGS := $(shell pkg-config --cflags openblas 2>/dev/null)

@@ -31,6 +31,8 @@ aff_section_elem_size(int kind)
 		case AFF_SEC_ITEM_KEYS:
 		case AFF_SEC_SEEN_PTR:
 		case AFF_SEC_NEIGHBOR_PTR:
+		case AFF_SEC_USER_TEXT_OFF:
+		case AFF_SEC_ITEM_TEXT_OFF:
 		case AFF_SEC_LOSS:
 		case AFF_SEC_SWEEP_SECONDS:
 			return 8;
@@ -43,6 +45,9 @@ aff_section_elem_size(int kind)
 		case AFF_SEC_NEIGHBOR_IDX:
 		case AFF_SEC_NEIGHBOR_SIM:
 			return 4;
+		case AFF_SEC_USER_TEXT:
+		case AFF_SEC_ITEM_TEXT:
+			return 1;
 	}
 	return 0;
 }
@@ -275,8 +280,15 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 
 	if (h->method < AFF_METHOD_IMPLICIT_ALS || h->method > AFF_METHOD_ITEM_KNN)
 		return corrupt(err, "Unknown method code %llu.", h->method, 0);
-	if (h->key_type != AFF_KEYS_BIGINT)
+	if (h->key_type != AFF_KEYS_BIGINT && h->key_type != AFF_KEYS_TEXT)
 		return corrupt(err, "Unknown key type code %llu.", h->key_type, 0);
+	if (h->key_type == AFF_KEYS_TEXT &&
+		(!sec[AFF_SEC_USER_TEXT_OFF] || !sec[AFF_SEC_USER_TEXT] ||
+		 !sec[AFF_SEC_ITEM_TEXT_OFF] || !sec[AFF_SEC_ITEM_TEXT] ||
+		 cnt[AFF_SEC_USER_TEXT_OFF] != (uint64_t) h->n_users + 1 ||
+		 cnt[AFF_SEC_ITEM_TEXT_OFF] != (uint64_t) h->n_items + 1))
+		return corrupt(err, "Text key dictionaries are missing or hold %llu / %llu offsets.",
+					   cnt[AFF_SEC_USER_TEXT_OFF], cnt[AFF_SEC_ITEM_TEXT_OFF]);
 	if (h->n_users < 1 || h->n_items < 1 || h->nnz < 1 ||
 		h->n_users > AFF_MAX_ENTITIES || h->n_items > AFF_MAX_ENTITIES)
 		return corrupt(err, "Bad counts: %llu users, %llu items.",
@@ -324,6 +336,12 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 					   cnt[AFF_SEC_NEIGHBOR_PTR], (uint64_t) h->n_items);
 
 	v->h = h;
+	v->user_text_off = sec[AFF_SEC_USER_TEXT_OFF];
+	v->user_text = sec[AFF_SEC_USER_TEXT];
+	v->item_text_off = sec[AFF_SEC_ITEM_TEXT_OFF];
+	v->item_text = sec[AFF_SEC_ITEM_TEXT];
+	v->user_text_len = cnt[AFF_SEC_USER_TEXT];
+	v->item_text_len = cnt[AFF_SEC_ITEM_TEXT];
 	v->item_weights = sec[AFF_SEC_ITEM_WEIGHTS];
 	v->neighbor_ptr = sec[AFF_SEC_NEIGHBOR_PTR];
 	v->neighbor_idx = sec[AFF_SEC_NEIGHBOR_IDX];
@@ -340,6 +358,47 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 	v->sweep_seconds = sec[AFF_SEC_SWEEP_SECONDS];
 	v->n_sweeps = (int64_t) cnt[AFF_SEC_LOSS];
 	v->neighbor_count = cnt[AFF_SEC_NEIGHBOR_IDX];
+	return AFF_OK;
+}
+
+/*
+ * The int64 key of a text key: a 64-bit hash of its bytes.  Models with
+ * text keys sort and search these like bigint keys and keep the text
+ * beside them; a fit refuses two texts with the same hash, and lookups
+ * compare the text too, so a hash collision can never confuse two keys.
+ */
+int64_t
+aff_text_key(const char *s, size_t len)
+{
+	uint64_t	h = aff_hash((const uint8_t *) s, len, 0x6a09e667f3bcc908ULL);
+
+	h ^= h >> 33;
+	h *= 0xff51afd7ed558ccdULL;
+	h ^= h >> 33;
+	return (int64_t) h;
+}
+
+/* Text dictionary: offsets from 0 to len, each text hashing to its key. */
+static AffStatus
+check_text_keys(const int64_t *keys, int64_t n, const int64_t *off, const char *text,
+				uint64_t len, const char *what, AffError *err)
+{
+	int64_t		i;
+
+	if (off[0] != 0 || (uint64_t) off[n] != len)
+		return corrupt(err, "Text key offsets run from %llu to %llu.",
+					   (uint64_t) off[0], (uint64_t) off[n]);
+	for (i = 0; i < n; i++)
+	{
+		if (off[i + 1] < off[i])
+			return corrupt(err, "Text key offsets decrease at index %llu.", (uint64_t) i, 0);
+		if (aff_text_key(text + off[i], (size_t) (off[i + 1] - off[i])) != keys[i])
+		{
+			aff_fail(err, AFF_ERR_CORRUPT, "invalid affinity.model value");
+			return aff_detail(err, "The text of %s key %lld does not match its hash.",
+							  what, (long long) i);
+		}
+	}
 	return AFF_OK;
 }
 
@@ -435,6 +494,12 @@ check_content(const AffModelView *v, AffError *err)
 			return corrupt(err, "Item factor %llu of item index %llu is not finite.",
 						   (uint64_t) bad % f, (uint64_t) bad / f);
 	}
+	if (h->key_type == AFF_KEYS_TEXT &&
+		(check_text_keys(v->user_keys, h->n_users, v->user_text_off, v->user_text,
+						 v->user_text_len, "user", err) != AFF_OK ||
+		 check_text_keys(v->item_keys, h->n_items, v->item_text_off, v->item_text,
+						 v->item_text_len, "item", err) != AFF_OK))
+		return err->status;
 	if (h->method == AFF_METHOD_EASE)
 	{
 		uint64_t	n = (uint64_t) h->n_items * (uint64_t) h->n_items;

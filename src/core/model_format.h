@@ -34,7 +34,11 @@
 #define AFF_SEC_NEIGHBOR_PTR	12	/* int64 [n_items + 1] CSR offsets (item_knn) */
 #define AFF_SEC_NEIGHBOR_IDX	13	/* int32 [neighbor count] item indices */
 #define AFF_SEC_NEIGHBOR_SIM	14	/* float [neighbor count] similarities */
-#define AFF_SEC_MAX				14
+#define AFF_SEC_USER_TEXT_OFF	15	/* int64 [n_users + 1] offsets into the user text */
+#define AFF_SEC_USER_TEXT		16	/* bytes: the users' text keys, back to back */
+#define AFF_SEC_ITEM_TEXT_OFF	17	/* int64 [n_items + 1] */
+#define AFF_SEC_ITEM_TEXT		18	/* bytes */
+#define AFF_SEC_MAX				18
 
 typedef struct AffModelHeader
 {
@@ -106,6 +110,13 @@ typedef struct AffModelView
 	const int32_t *neighbor_idx;	/* neighbor_idx[neighbor_ptr[i] .. */
 	const float *neighbor_sim;	/* neighbor_ptr[i + 1]) */
 	uint64_t	neighbor_count;
+	/* text keys: key i is text[off[i] .. off[i + 1]); its int64 key is aff_text_key() of it */
+	const int64_t *user_text_off;
+	const char *user_text;
+	const int64_t *item_text_off;
+	const char *item_text;
+	uint64_t	user_text_len;
+	uint64_t	item_text_len;
 } AffModelView;
 
 /* What an encoder is given: header fields filled, arrays by section kind. */
@@ -128,5 +139,6 @@ extern AffStatus aff_model_view(const uint8_t *buf, uint64_t len,
 extern uint64_t aff_hash(const uint8_t *p, uint64_t n, uint64_t h);
 extern uint64_t aff_model_checksum(const uint8_t *buf, uint64_t len);
 extern const char *aff_method_name(int method);
+extern int64_t aff_text_key(const char *s, size_t len);
 
 #endif

@@ -111,8 +111,8 @@ emit_chunk(FunctionCallInfo fcinfo, const AffModelView *v, const int32 *users,
 			Datum		values[4];
 			const AffScored *e = &out[r * k + j];
 
-			values[0] = Int64GetDatum(v->user_keys[users[r]]);
-			values[1] = Int64GetDatum(v->item_keys[e->index]);
+			values[0] = key_datum(v, true, users[r]);
+			values[1] = key_datum(v, false, e->index);
 			values[2] = Float4GetDatum(e->score);
 			values[3] = Int32GetDatum((int32) (j + 1));
 			put_row(fcinfo, values);
@@ -167,6 +167,7 @@ top_items_for_all(PG_FUNCTION_ARGS)
 	if (PG_ARGISNULL(0))
 		return (Datum) 0;
 	model_fetch(fcinfo, 0, &v);
+	check_output_keys(fcinfo, &v, 0);
 	job.v = &v;
 	job.k = get_k(fcinfo, 1, v.h->n_items);
 	require_arg(fcinfo, 2, "exclude_seen");
@@ -181,7 +182,7 @@ top_items_for_all(PG_FUNCTION_ARGS)
 			users[c] = (int32) c;
 	}
 	else
-		users = array_key_indices(fcinfo, 3, v.user_keys, v.h->n_users, &n_users);
+		users = array_key_indices(fcinfo, 3, &v, true, &n_users);
 
 	/* about 8M floats of scores per thread at most */
 	job.block = (int) Max(1, Min(64, (8 * 1024 * 1024) / v.h->n_items));

@@ -9,6 +9,8 @@
  */
 #include "affinity_pg.h"
 
+#include "serving_common.h"
+
 #include "../core/interactions.h"
 
 /* Copy arrays of elem bytes without the range [skip_from, skip_to). */
@@ -40,14 +42,14 @@ forget_user(PG_FUNCTION_ARGS)
 
 	model_fetch(fcinfo, 0, &v);
 	h = v.h;
-	u = aff_find_key(v.user_keys, h->n_users, PG_GETARG_INT64(1));
+	u = key_arg_index(fcinfo, 1, &v, true);
 	if (u < 0)
 		PG_RETURN_DATUM(PG_GETARG_DATUM(0));
 	if (h->n_users == 1)
 		ereport(ERROR,
 				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
 				 errmsg("cannot forget the only user of a model"),
-				 errdetail("User " INT64_FORMAT " is the model's one user.", PG_GETARG_INT64(1)),
+				 errdetail("The user asked for is the model's one user."),
 				 errhint("Drop the model instead.")));
 	lo = v.seen_ptr[u];
 	hi = v.seen_ptr[u + 1];
@@ -98,6 +100,24 @@ forget_user(PG_FUNCTION_ARGS)
 		ptr[j] = j < u ? v.seen_ptr[j] : v.seen_ptr[j + 1] - (hi - lo);
 	parts.data[AFF_SEC_SEEN_PTR] = ptr;
 	parts.count[AFF_SEC_SEEN_PTR] = h->n_users;
+
+	if (h->key_type == AFF_KEYS_TEXT)
+	{
+		int64		tlo = v.user_text_off[u];
+		int64		thi = v.user_text_off[u + 1];
+		int64	   *toff = palloc_extended(sizeof(int64) * h->n_users, MCXT_ALLOC_HUGE);
+
+		for (j = 0; j < h->n_users; j++)
+			toff[j] = j < u ? v.user_text_off[j] : v.user_text_off[j + 1] - (thi - tlo);
+		parts.data[AFF_SEC_USER_TEXT_OFF] = toff;
+		parts.count[AFF_SEC_USER_TEXT_OFF] = h->n_users;
+		parts.data[AFF_SEC_USER_TEXT] = copy_without(v.user_text, v.user_text_len, 1, tlo, thi);
+		parts.count[AFF_SEC_USER_TEXT] = v.user_text_len - (thi - tlo);
+		parts.data[AFF_SEC_ITEM_TEXT_OFF] = v.item_text_off;
+		parts.count[AFF_SEC_ITEM_TEXT_OFF] = h->n_items + 1;
+		parts.data[AFF_SEC_ITEM_TEXT] = v.item_text;
+		parts.count[AFF_SEC_ITEM_TEXT] = v.item_text_len;
+	}
 
 	pop = palloc_extended(sizeof(float) * h->n_items, MCXT_ALLOC_HUGE);
 	memcpy(pop, v.popularity, sizeof(float) * h->n_items);

@@ -17,11 +17,13 @@
 #include "libpq/pqformat.h"
 #include "miscadmin.h"
 #include "portability/instr_time.h"
+#include "utils/builtins.h"
 #include "utils/ps_status.h"
 #include "utils/memutils.h"
 
 #include "../core/als.h"
 #include "../core/interactions.h"
+#include "text_keys.h"
 #include "weights.h"
 
 typedef struct FitState
@@ -35,6 +37,9 @@ typedef struct FitState
 	int64		rows_zero;
 	bool		have_options;
 	FitOptions	opts;
+	bool		text_keys;		/* fed by the text overload */
+	TextDict   *user_texts;		/* text keys seen, when text_keys */
+	TextDict   *item_texts;
 	bytea	   *result;			/* the model, once finalized */
 } FitState;
 
@@ -74,45 +79,110 @@ fit_state_new(FunctionCallInfo fcinfo, MemoryContext aggcxt)
 	return st;
 }
 
-PG_FUNCTION_INFO_V1(affinity_fit_transfn);
+/* Append one row; shared by the bigint and text transition functions. */
+static void
+add_row(FitState *st, int64 user, int64 item, float4 w)
+{
+	if (st->n_rows == st->cap_rows)
+		grow_rows(st);
+	st->rows[st->n_rows].user = user;
+	st->rows[st->n_rows].item = item;
+	st->rows[st->n_rows].weight = w;
+	st->n_rows++;
+}
 
-/* (state, user_id, item_id, weight [, options]) -> state */
-Datum
-affinity_fit_transfn(PG_FUNCTION_ARGS)
+static void
+bad_weight(const char *user, const char *item, float4 w)
+{
+	ereport(ERROR,
+			(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
+			 errmsg("affinity.fit weights must be finite and not negative"),
+			 errdetail("User %s, item %s has weight %g.", user, item, (double) w),
+			 errhint("Filter such rows out, or map them to a weight of zero, which is skipped.")));
+}
+
+/*
+ * The state for this call, counting the row; returns NULL when the row is
+ * skipped (a NULL, or a zero weight).  *w gets the weight.
+ */
+static FitState *
+take_row(FunctionCallInfo fcinfo, FitState **stp, float4 *w)
 {
 	MemoryContext aggcxt;
 	FitState   *st;
-	float4		w;
 
 	if (!AggCheckCallContext(fcinfo, &aggcxt))
-		elog(ERROR, "affinity_fit_transfn called in non-aggregate context");
+		elog(ERROR, "affinity.fit transition called in non-aggregate context");
 	st = PG_ARGISNULL(0) ? fit_state_new(fcinfo, aggcxt) : (FitState *) PG_GETARG_POINTER(0);
-
+	*stp = st;
 	st->rows_read++;
 	if (PG_ARGISNULL(1) || PG_ARGISNULL(2) || PG_ARGISNULL(3))
 	{
 		st->rows_null++;
-		PG_RETURN_POINTER(st);
+		return NULL;
 	}
-	w = PG_GETARG_FLOAT4(3);
-	if (!(w >= 0) || isinf(w))
-		ereport(ERROR,
-				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
-				 errmsg("affinity.fit weights must be finite and not negative"),
-				 errdetail("User " INT64_FORMAT ", item " INT64_FORMAT " has weight %g.",
-						   PG_GETARG_INT64(1), PG_GETARG_INT64(2), (double) w),
-				 errhint("Filter such rows out, or map them to a weight of zero, which is skipped.")));
-	if (w == 0)
+	*w = PG_GETARG_FLOAT4(3);
+	if (*w == 0)
 	{
 		st->rows_zero++;
-		PG_RETURN_POINTER(st);
+		return NULL;
 	}
-	if (st->n_rows == st->cap_rows)
-		grow_rows(st);
-	st->rows[st->n_rows].user = PG_GETARG_INT64(1);
-	st->rows[st->n_rows].item = PG_GETARG_INT64(2);
-	st->rows[st->n_rows].weight = w;
-	st->n_rows++;
+	return st;
+}
+
+PG_FUNCTION_INFO_V1(affinity_fit_transfn);
+
+/* (state, user_id bigint, item_id bigint, weight [, options]) -> state */
+Datum
+affinity_fit_transfn(PG_FUNCTION_ARGS)
+{
+	FitState   *st;
+	float4		w;
+
+	if (take_row(fcinfo, &st, &w) == NULL)
+		PG_RETURN_POINTER(st);
+	if (!(w >= 0) || isinf(w))
+		bad_weight(psprintf(INT64_FORMAT, PG_GETARG_INT64(1)),
+				   psprintf(INT64_FORMAT, PG_GETARG_INT64(2)), w);
+	add_row(st, PG_GETARG_INT64(1), PG_GETARG_INT64(2), w);
+	PG_RETURN_POINTER(st);
+}
+
+PG_FUNCTION_INFO_V1(affinity_fit_text_transfn);
+
+/*
+ * (state, user_id text, item_id text, weight [, options]) -> state.  Each
+ * text becomes its int64 key; the texts are kept for the model.
+ */
+Datum
+affinity_fit_text_transfn(PG_FUNCTION_ARGS)
+{
+	FitState   *st;
+	float4		w;
+	text	   *u;
+	text	   *i;
+	MemoryContext old;
+	int64		uk;
+	int64		ik;
+
+	if (take_row(fcinfo, &st, &w) == NULL)
+		PG_RETURN_POINTER(st);
+	u = PG_GETARG_TEXT_PP(1);
+	i = PG_GETARG_TEXT_PP(2);
+	if (!(w >= 0) || isinf(w))
+		bad_weight(psprintf("\"%s\"", text_to_cstring(u)),
+				   psprintf("\"%s\"", text_to_cstring(i)), w);
+	if (!st->text_keys)
+	{
+		st->text_keys = true;
+		st->user_texts = text_dict_create(st->cxt);
+		st->item_texts = text_dict_create(st->cxt);
+	}
+	old = MemoryContextSwitchTo(st->cxt);
+	uk = text_dict_add(st->user_texts, VARDATA_ANY(u), VARSIZE_ANY_EXHDR(u), "user");
+	ik = text_dict_add(st->item_texts, VARDATA_ANY(i), VARSIZE_ANY_EXHDR(i), "item");
+	MemoryContextSwitchTo(old);
+	add_row(st, uk, ik, w);
 	PG_RETURN_POINTER(st);
 }
 
@@ -168,6 +238,17 @@ affinity_fit_combinefn(PG_FUNCTION_ARGS)
 		a = (FitState *) PG_GETARG_POINTER(0);
 	merge_counts(a, b);
 	append_rows(a, b->rows, b->n_rows);
+	if (b->text_keys)
+	{
+		if (!a->text_keys)
+		{
+			a->text_keys = true;
+			a->user_texts = text_dict_create(a->cxt);
+			a->item_texts = text_dict_create(a->cxt);
+		}
+		text_dict_merge(a->user_texts, b->user_texts, "user");
+		text_dict_merge(a->item_texts, b->item_texts, "item");
+	}
 	PG_RETURN_POINTER(a);
 }
 
@@ -201,6 +282,12 @@ affinity_fit_serialfn(PG_FUNCTION_ARGS)
 		pq_sendint64(&buf, st->rows[i].user);
 		pq_sendint64(&buf, st->rows[i].item);
 		pq_sendfloat4(&buf, st->rows[i].weight);
+	}
+	pq_sendint8(&buf, st->text_keys ? 1 : 0);
+	if (st->text_keys)
+	{
+		text_dict_serialize(&buf, st->user_texts);
+		text_dict_serialize(&buf, st->item_texts);
 	}
 	PG_RETURN_BYTEA_P(pq_endtypsend(&buf));
 }
@@ -246,6 +333,12 @@ affinity_fit_deserialfn(PG_FUNCTION_ARGS)
 		st->rows[i].weight = pq_getmsgfloat4(&buf);
 	}
 	st->n_rows = n;
+	st->text_keys = pq_getmsgbyte(&buf) != 0;
+	if (st->text_keys)
+	{
+		st->user_texts = text_dict_deserialize(&buf, aggcxt);
+		st->item_texts = text_dict_deserialize(&buf, aggcxt);
+	}
 	pq_getmsgend(&buf);
 	PG_RETURN_POINTER(st);
 }
@@ -314,7 +407,7 @@ fill_header(AffModelParts *parts, const FitState *st, const AffMatrix *m)
 
 	memset(parts, 0, sizeof(*parts));
 	h->method = (uint16) o->method;
-	h->key_type = AFF_KEYS_BIGINT;
+	h->key_type = st->text_keys ? AFF_KEYS_TEXT : AFF_KEYS_BIGINT;
 	h->n_users = m->n_users;
 	h->n_items = m->n_items;
 	h->nnz = m->nnz;
@@ -350,6 +443,26 @@ fill_header(AffModelParts *parts, const FitState *st, const AffMatrix *m)
 	parts->count[AFF_SEC_SEEN_ITEMS] = m->nnz;
 	parts->data[AFF_SEC_SEEN_WEIGHTS] = m->row_val;
 	parts->count[AFF_SEC_SEEN_WEIGHTS] = m->nnz;
+}
+
+/* The text dictionaries of a text-key fit, in the matrix's key order. */
+static void
+add_text_sections(FitState *st, const AffMatrix *m, AffModelParts *parts)
+{
+	int64	   *off;
+	char	   *bytes;
+	uint64		len;
+
+	text_dict_layout(st->user_texts, m->user_keys, m->n_users, &off, &bytes, &len);
+	parts->data[AFF_SEC_USER_TEXT_OFF] = off;
+	parts->count[AFF_SEC_USER_TEXT_OFF] = m->n_users + 1;
+	parts->data[AFF_SEC_USER_TEXT] = bytes;
+	parts->count[AFF_SEC_USER_TEXT] = len;
+	text_dict_layout(st->item_texts, m->item_keys, m->n_items, &off, &bytes, &len);
+	parts->data[AFF_SEC_ITEM_TEXT_OFF] = off;
+	parts->count[AFF_SEC_ITEM_TEXT_OFF] = m->n_items + 1;
+	parts->data[AFF_SEC_ITEM_TEXT] = bytes;
+	parts->count[AFF_SEC_ITEM_TEXT] = len;
 }
 
 /* Item popularity: number of distinct training users. */
@@ -481,6 +594,8 @@ fit_model(FitState *st)
 	st->n_rows = st->cap_rows = 0;
 
 	fill_header(&parts, st, &m);
+	if (st->text_keys)
+		add_text_sections(st, &m, &parts);
 	parts.data[AFF_SEC_POPULARITY] = item_popularity(&m);
 	parts.count[AFF_SEC_POPULARITY] = m.n_items;
 	switch (st->opts.method)

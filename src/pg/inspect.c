@@ -19,8 +19,7 @@ one_vector(FunctionCallInfo fcinfo, bool users)
 
 	model_fetch(fcinfo, 0, &v);
 	require_factors(&v, users ? "user_vector" : "item_vector");
-	j = users ? aff_find_key(v.user_keys, v.h->n_users, PG_GETARG_INT64(1))
-		: aff_find_key(v.item_keys, v.h->n_items, PG_GETARG_INT64(1));
+	j = key_arg_index(fcinfo, 1, &v, users);
 	if (j < 0)
 		PG_RETURN_NULL();
 	PG_RETURN_ARRAYTYPE_P(vector_array((users ? v.user_factors : v.item_factors) +
@@ -33,22 +32,29 @@ all_vectors(FunctionCallInfo fcinfo, bool users)
 {
 	AffModelView v;
 	int64		n;
-	const int64 *keys;
+	int32	   *list = NULL;
+	int			n_list = 0;
 	const float *F;
-	int64		j;
+	int64		r;
 
 	materialize(fcinfo);
+	if (PG_ARGISNULL(0))
+		return (Datum) 0;
 	model_fetch(fcinfo, 0, &v);
+	check_output_keys(fcinfo, &v, 0);
 	require_factors(&v, users ? "user_vectors" : "item_vectors");
-	n = users ? v.h->n_users : v.h->n_items;
-	keys = users ? v.user_keys : v.item_keys;
+	/* the text overloads take a list of keys (NULL: all) */
+	if (PG_NARGS() > 1 && !PG_ARGISNULL(1))
+		list = array_key_indices(fcinfo, 1, &v, users, &n_list);
+	n = list ? n_list : (users ? v.h->n_users : v.h->n_items);
 	F = users ? v.user_factors : v.item_factors;
-	for (j = 0; j < n; j++)
+	for (r = 0; r < n; r++)
 	{
 		Datum		values[2];
+		int64		j = list ? list[r] : r;
 
 		CHECK_FOR_INTERRUPTS();
-		values[0] = Int64GetDatum(keys[j]);
+		values[0] = key_datum(&v, users, j);
 		values[1] = PointerGetDatum(vector_array(F + (size_t) j * v.h->factors, v.h->factors));
 		put_row(fcinfo, values);
 	}
@@ -226,10 +232,11 @@ describe(PG_FUNCTION_ARGS)
 
 	read_summary(fcinfo, &hd, &loss, &secs, &n_sweeps);
 	initStringInfo(&s);
-	appendStringInfo(&s, "{\"format_version\": %d, \"method\": \"%s\", \"key_type\": \"bigint\", "
+	appendStringInfo(&s, "{\"format_version\": %d, \"method\": \"%s\", \"key_type\": \"%s\", "
 					 "\"users\": " INT64_FORMAT ", \"items\": " INT64_FORMAT
 					 ", \"interactions\": " INT64_FORMAT,
 					 h->version, aff_method_name(h->method),
+					 h->key_type == AFF_KEYS_TEXT ? "text" : "bigint",
 					 h->n_users, h->n_items, h->nnz);
 	append_options(&s, h);
 	appendStringInfo(&s, ", \"rows_read\": " INT64_FORMAT ", \"rows_skipped_null\": " INT64_FORMAT

@@ -376,6 +376,12 @@ ranking_metrics_finalfn(PG_FUNCTION_ARGS)
 	m = (struct varlena *) PG_DETOAST_DATUM_COPY(PointerGetDatum(st->model));
 	if (aff_model_view((const uint8 *) m, VARSIZE(m), &v, &err) != AFF_OK)
 		report_engine_error(&err);
+	if (v.h->key_type == AFF_KEYS_TEXT)
+		ereport(ERROR,
+				(errcode(ERRCODE_FEATURE_NOT_SUPPORTED),
+				 errmsg("ranking_metrics takes bigint keys in this version"),
+				 errdetail("This model was fitted on text user and item ids."),
+				 errhint("Evaluate with top_items over the held-out users, or map the texts to bigint ids for the evaluation.")));
 	if (st->k == 0)
 		ereport(ERROR,
 				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),

@@ -20,6 +20,7 @@
 #include "utils/array.h"
 
 #include "../core/als.h"
+#include "text_keys.h"
 #include "weights.h"
 
 /*
@@ -72,7 +73,7 @@ emit_best(FunctionCallInfo fcinfo, const AffModelView *v, const float *scores,
 		for (i = 0; i < n_cand; i++)
 			if (!skip[cand[i]])
 				aff_topk_push(&t, scores[cand[i]], cand[i]);
-	emit_topk(fcinfo, &t, v->item_keys);
+	emit_topk(fcinfo, &t, v, false);
 }
 
 /* Mark the items of the bigint[] argument argno (when not NULL) in skip. */
@@ -85,7 +86,7 @@ mask_items(FunctionCallInfo fcinfo, int argno, const AffModelView *v, uint8 *ski
 
 	if (PG_ARGISNULL(argno))
 		return;
-	idx = array_key_indices(fcinfo, argno, v->item_keys, v->h->n_items, &n);
+	idx = array_key_indices(fcinfo, argno, v, false, &n);
 	for (i = 0; i < n; i++)
 		skip[idx[i]] = 1;
 }
@@ -118,10 +119,11 @@ top_items(PG_FUNCTION_ARGS)
 	if (PG_ARGISNULL(0) || PG_ARGISNULL(1))
 		return (Datum) 0;
 	model_fetch(fcinfo, 0, &v);
+	check_output_keys(fcinfo, &v, 0);
 	k = get_k(fcinfo, 2, v.h->n_items);
 	require_arg(fcinfo, 3, "exclude_seen");
 	require_arg(fcinfo, 6, "fallback_popular");
-	u = aff_find_key(v.user_keys, v.h->n_users, PG_GETARG_INT64(1));
+	u = key_arg_index(fcinfo, 1, &v, true);
 	if (k == 0 || (u < 0 && !PG_GETARG_BOOL(6)))
 		return (Datum) 0;
 
@@ -131,7 +133,7 @@ top_items(PG_FUNCTION_ARGS)
 			skip[v.seen_items[j]] = 1;
 	mask_items(fcinfo, 4, &v, skip);
 	if (!PG_ARGISNULL(5))
-		cand = array_key_indices(fcinfo, 5, v.item_keys, v.h->n_items, &n_cand);
+		cand = array_key_indices(fcinfo, 5, &v, false, &n_cand);
 
 	scores = alloc_scores(&v);
 	if (u < 0)
@@ -161,6 +163,7 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 			 int argno_w, int32 **idx_out, float **w_out)
 {
 	ArrayType  *b = PG_GETARG_ARRAYTYPE_P(argno_b);
+	bool		text_call = ARR_ELEMTYPE(b) == TEXTOID;
 	Datum	   *be;
 	bool	   *bn;
 	int			nb;
@@ -173,7 +176,16 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 	int			n = 0;
 	int			i;
 
-	deconstruct_array(b, INT8OID, 8, true, TYPALIGN_DOUBLE, &be, &bn, &nb);
+	if ((v->h->key_type == AFF_KEYS_TEXT) != text_call)
+	{
+		int			dummy;
+
+		(void) array_key_indices(fcinfo, argno_b, v, false, &dummy);	/* raises the mismatch */
+	}
+	if (text_call)
+		deconstruct_array(b, TEXTOID, -1, false, TYPALIGN_INT, &be, &bn, &nb);
+	else
+		deconstruct_array(b, INT8OID, 8, true, TYPALIGN_DOUBLE, &be, &bn, &nb);
 	if (!PG_ARGISNULL(argno_w))
 	{
 		deconstruct_array(PG_GETARG_ARRAYTYPE_P(argno_w), FLOAT4OID, 4, true,
@@ -203,7 +215,14 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 		}
 		if (bn[i] || wi == 0)
 			continue;
-		j = aff_find_key(v->item_keys, v->h->n_items, DatumGetInt64(be[i]));
+		if (text_call)
+		{
+			text	   *t = DatumGetTextPP(be[i]);
+
+			j = text_key_index(v, false, VARDATA_ANY(t), VARSIZE_ANY_EXHDR(t));
+		}
+		else
+			j = aff_find_key(v->item_keys, v->h->n_items, DatumGetInt64(be[i]));
 		if (j < 0)
 			continue;
 		if (acc[j] == 0)
@@ -285,6 +304,7 @@ top_items_basket(PG_FUNCTION_ARGS)
 		return (Datum) 0;
 	e = model_get(fcinfo, 0);
 	v = e->view;
+	check_output_keys(fcinfo, &v, 0);
 	k = get_k(fcinfo, 2, v.h->n_items);
 	require_arg(fcinfo, 4, "exclude_seen");
 	if (k == 0)
@@ -297,7 +317,7 @@ top_items_basket(PG_FUNCTION_ARGS)
 			skip[idx[i]] = 1;
 	mask_items(fcinfo, 5, &v, skip);
 	if (!PG_ARGISNULL(6))
-		cand = array_key_indices(fcinfo, 6, v.item_keys, v.h->n_items, &n_cand);
+		cand = array_key_indices(fcinfo, 6, &v, false, &n_cand);
 
 	scores = alloc_scores(&v);
 	if (n == 0 || v.h->method == AFF_METHOD_POPULARITY)
@@ -323,7 +343,7 @@ top_items_basket(PG_FUNCTION_ARGS)
 static void
 emit_cosine(FunctionCallInfo fcinfo, const float *F, const float *norms,
 			int64 n, int f, int64 r, const int32 *cand, int n_cand, int64 k,
-			const int64 *keys)
+			const AffModelView *v, bool users)
 {
 	const float *y = F + (size_t) r * f;
 	AffTopK		t;
@@ -338,7 +358,7 @@ emit_cosine(FunctionCallInfo fcinfo, const float *F, const float *norms,
 		if (j != r)
 			aff_topk_push(&t, d > 0 ? dot_f(y, F + (size_t) j * f, f) / d : 0.0f, j);
 	}
-	emit_topk(fcinfo, &t, keys);
+	emit_topk(fcinfo, &t, v, users);
 }
 
 PG_FUNCTION_INFO_V1(items_like);
@@ -363,18 +383,19 @@ items_like(PG_FUNCTION_ARGS)
 		return (Datum) 0;
 	e = model_get(fcinfo, 0);
 	v = e->view;
+	check_output_keys(fcinfo, &v, 0);
 	if (v.h->method == AFF_METHOD_POPULARITY)
 		require_factors(&v, "items_like");
 	k = get_k(fcinfo, 2, v.h->n_items);
-	it = aff_find_key(v.item_keys, v.h->n_items, PG_GETARG_INT64(1));
+	it = key_arg_index(fcinfo, 1, &v, false);
 	if (it < 0 || k == 0)
 		return (Datum) 0;
 	if (!PG_ARGISNULL(3))
-		cand = array_key_indices(fcinfo, 3, v.item_keys, v.h->n_items, &n_cand);
+		cand = array_key_indices(fcinfo, 3, &v, false, &n_cand);
 
 	if (v.h->method == AFF_METHOD_IMPLICIT_ALS)
 		emit_cosine(fcinfo, v.item_factors, cached_norms(e, false), v.h->n_items,
-					v.h->factors, it, cand, n_cand, k, v.item_keys);
+					v.h->factors, it, cand, n_cand, k, &v, false);
 	else
 	{
 		float	   *sims = alloc_scores(&v);
@@ -410,12 +431,13 @@ users_like(PG_FUNCTION_ARGS)
 				 errdetail("This model was fitted with method \"%s\".",
 						   aff_method_name(v.h->method)),
 				 errhint("Fit with method \"implicit_als\".")));
+	check_output_keys(fcinfo, &v, 0);
 	k = get_k(fcinfo, 2, v.h->n_users);
-	u = aff_find_key(v.user_keys, v.h->n_users, PG_GETARG_INT64(1));
+	u = key_arg_index(fcinfo, 1, &v, true);
 	if (u < 0 || k == 0)
 		return (Datum) 0;
 	emit_cosine(fcinfo, v.user_factors, cached_norms(e, true), v.h->n_users,
-				v.h->factors, u, NULL, 0, k, v.user_keys);
+				v.h->factors, u, NULL, 0, k, &v, true);
 	return (Datum) 0;
 }
 
@@ -430,8 +452,8 @@ score(PG_FUNCTION_ARGS)
 	int64		i;
 
 	model_fetch(fcinfo, 0, &v);
-	u = aff_find_key(v.user_keys, v.h->n_users, PG_GETARG_INT64(1));
-	i = aff_find_key(v.item_keys, v.h->n_items, PG_GETARG_INT64(2));
+	u = key_arg_index(fcinfo, 1, &v, true);
+	i = key_arg_index(fcinfo, 2, &v, false);
 	if (u < 0 || i < 0)
 		PG_RETURN_NULL();
 	switch (v.h->method)
@@ -523,9 +545,10 @@ reasons(PG_FUNCTION_ARGS)
 				 errmsg("reasons needs a personalised model"),
 				 errdetail("A popularity model ranks by buyer counts alone."),
 				 errhint("Fit with method \"implicit_als\", \"ease\" or \"item_knn\".")));
+	check_output_keys(fcinfo, &v, 0);
 	k = get_k(fcinfo, 3, v.h->nnz);
-	u = aff_find_key(v.user_keys, v.h->n_users, PG_GETARG_INT64(1));
-	i = aff_find_key(v.item_keys, v.h->n_items, PG_GETARG_INT64(2));
+	u = key_arg_index(fcinfo, 1, &v, true);
+	i = key_arg_index(fcinfo, 2, &v, false);
 	if (u < 0 || i < 0 || k == 0)
 		return (Datum) 0;
 	n = v.seen_ptr[u + 1] - v.seen_ptr[u];
@@ -545,7 +568,7 @@ reasons(PG_FUNCTION_ARGS)
 	{
 		Datum		values[3];
 
-		values[0] = Int64GetDatum(v.item_keys[v.seen_items[v.seen_ptr[u] + t.heap[r].index]]);
+		values[0] = key_datum(&v, false, v.seen_items[v.seen_ptr[u] + t.heap[r].index]);
 		values[1] = Float4GetDatum(t.heap[r].score);
 		values[2] = Int32GetDatum((int32) (r + 1));
 		put_row(fcinfo, values);

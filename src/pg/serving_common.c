@@ -4,6 +4,7 @@
  *		argument checks, key lists to index lists, emitting a top-k.
  */
 #include "serving_common.h"
+#include "text_keys.h"
 
 #include "catalog/pg_type.h"
 #include "funcapi.h"
@@ -83,15 +84,75 @@ cmp_int32(const void *a, const void *b)
 	return x < y ? -1 : (x > y);
 }
 
+/* The model's key type must be the one the call uses. */
+static void
+require_key_type(const AffModelView *v, bool text_call)
+{
+	bool		text_model = v->h->key_type == AFF_KEYS_TEXT;
+
+	if (text_model == text_call)
+		return;
+	ereport(ERROR,
+			(errcode(ERRCODE_DATATYPE_MISMATCH),
+			 errmsg("this model has %s keys, but the call uses %s keys",
+					text_model ? "text" : "bigint", text_call ? "text" : "bigint"),
+			 errdetail("The model was fitted on %s user and item ids.",
+					   text_model ? "text" : "bigint"),
+			 errhint("Pass the ids as %s, for example %s.", text_model ? "text" : "bigint",
+					 text_model ? "'SKU-001'::text or ARRAY['A', 'B']::text[]"
+					 : "42::bigint or ARRAY[1, 2]::bigint[]")));
+}
+
 /*
- * Indices (into keys[0..n_keys)) of the known keys of a bigint[] argument (NULL elements and
- * unknown keys ignored), sorted and without repeats.  *n gets the count.
+ * Index of the key passed as argument argno (bigint or text, as the SQL
+ * signature says), or -1 when the model does not know it.
+ */
+int64
+key_arg_index(FunctionCallInfo fcinfo, int argno, const AffModelView *v, bool users)
+{
+	Oid			t = get_fn_expr_argtype(fcinfo->flinfo, argno);
+
+	if (t == TEXTOID)
+	{
+		text	   *k = PG_GETARG_TEXT_PP(argno);
+
+		require_key_type(v, true);
+		return text_key_index(v, users, VARDATA_ANY(k), VARSIZE_ANY_EXHDR(k));
+	}
+	require_key_type(v, false);
+	return aff_find_key(users ? v->user_keys : v->item_keys,
+						users ? v->h->n_users : v->h->n_items, PG_GETARG_INT64(argno));
+}
+
+/* The key of index i as the call returns it: bigint or text. */
+Datum
+key_datum(const AffModelView *v, bool users, int64 i)
+{
+	if (v->h->key_type == AFF_KEYS_TEXT)
+		return text_key_datum(v, users, i);
+	return Int64GetDatum(users ? v->user_keys[i] : v->item_keys[i]);
+}
+
+/* Column attno of the result must hold keys of the model's type. */
+void
+check_output_keys(FunctionCallInfo fcinfo, const AffModelView *v, int attno)
+{
+	ReturnSetInfo *rsinfo = (ReturnSetInfo *) fcinfo->resultinfo;
+	Oid			t = TupleDescAttr(rsinfo->setDesc, attno)->atttypid;
+
+	require_key_type(v, t == TEXTOID);
+}
+
+/*
+ * Indices of the known keys of a bigint[] or text[] argument (NULL elements
+ * and unknown keys ignored), sorted and without repeats.  *n gets the count.
  */
 int32 *
-array_key_indices(FunctionCallInfo fcinfo, int argno, const int64 *keys, int64 n_keys,
+array_key_indices(FunctionCallInfo fcinfo, int argno, const AffModelView *v, bool users,
 				  int *n)
 {
 	ArrayType  *arr = PG_GETARG_ARRAYTYPE_P(argno);
+	bool		text_call = ARR_ELEMTYPE(arr) == TEXTOID;
 	Datum	   *elems;
 	bool	   *nulls;
 	int			ne;
@@ -99,7 +160,11 @@ array_key_indices(FunctionCallInfo fcinfo, int argno, const int64 *keys, int64 n
 	int			i;
 	int			out = 0;
 
-	deconstruct_array(arr, INT8OID, 8, true, TYPALIGN_DOUBLE, &elems, &nulls, &ne);
+	require_key_type(v, text_call);
+	if (text_call)
+		deconstruct_array(arr, TEXTOID, -1, false, TYPALIGN_INT, &elems, &nulls, &ne);
+	else
+		deconstruct_array(arr, INT8OID, 8, true, TYPALIGN_DOUBLE, &elems, &nulls, &ne);
 	idx = palloc(sizeof(int32) * (ne + 1));
 	for (i = 0; i < ne; i++)
 	{
@@ -107,7 +172,16 @@ array_key_indices(FunctionCallInfo fcinfo, int argno, const int64 *keys, int64 n
 
 		if (nulls[i])
 			continue;
-		j = aff_find_key(keys, n_keys, DatumGetInt64(elems[i]));
+		if (text_call)
+		{
+			text	   *k = DatumGetTextPP(elems[i]);
+
+			j = text_key_index(v, users, VARDATA_ANY(k), VARSIZE_ANY_EXHDR(k));
+		}
+		else
+			j = aff_find_key(users ? v->user_keys : v->item_keys,
+							 users ? v->h->n_users : v->h->n_items,
+							 DatumGetInt64(elems[i]));
 		if (j >= 0)
 			idx[out++] = (int32) j;
 	}
@@ -121,7 +195,7 @@ array_key_indices(FunctionCallInfo fcinfo, int argno, const int64 *keys, int64 n
 
 /* Emit the heap's content as (key, score, rank) rows. */
 void
-emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const int64 *keys)
+emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const AffModelView *v, bool users)
 {
 	int64		n = aff_topk_finish(t);
 	int64		r;
@@ -130,7 +204,7 @@ emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const int64 *keys)
 	{
 		Datum		values[3];
 
-		values[0] = Int64GetDatum(keys[t->heap[r].index]);
+		values[0] = key_datum(v, users, t->heap[r].index);
 		values[1] = Float4GetDatum(t->heap[r].score);
 		values[2] = Int32GetDatum((int32) (r + 1));
 		put_row(fcinfo, values);

@@ -18,8 +18,13 @@ extern void require_arg(FunctionCallInfo fcinfo, int argno, const char *name);
 extern int64 get_k(FunctionCallInfo fcinfo, int argno, int64 limit);
 extern void require_factors(const AffModelView *v, const char *fn);
 extern int32 *array_key_indices(FunctionCallInfo fcinfo, int argno,
-								const int64 *keys, int64 n_keys, int *n);
-extern void emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const int64 *keys);
+								const AffModelView *v, bool users, int *n);
+extern void emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const AffModelView *v,
+					  bool users);
+extern int64 key_arg_index(FunctionCallInfo fcinfo, int argno, const AffModelView *v,
+						   bool users);
+extern Datum key_datum(const AffModelView *v, bool users, int64 i);
+extern void check_output_keys(FunctionCallInfo fcinfo, const AffModelView *v, int attno);
 extern float dot_f(const float *a, const float *b, int f);
 extern ArrayType *vector_array(const float *x, int f);
 extern void user_scores(const AffModelView *v, int64 u, float *scores);
