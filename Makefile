@@ -29,7 +29,7 @@ EXTVERSION = 1.1
 DATA = src/affinity--1.0.sql src/affinity--1.0--1.1.sql
 PGFILEDESC = "affinity - recommendation models in SQL"
 
-REGRESS = type fit serving batch metrics registry text_keys errors upgrade
+REGRESS = type fit serving batch metrics methods registry text_keys errors upgrade
 REGRESS_OPTS = --inputdir=. --outputdir=. --load-extension=affinity
 
 BLAS_CFLAGS := $(shell pkg-config --cflags openblas 2>/dev/null)
@@ -47,3 +47,6 @@ override with_llvm = no
 PG_CONFIG ?= pg_config
 PGXS := $(shell $(PG_CONFIG) --pgxs)
 include $(PGXS)
+
+# PGXS does not track header dependencies: rebuild every object when a header changes
+$(OBJS): $(wildcard src/core/*.h src/pg/*.h)

@@ -14,12 +14,13 @@
  * by one thread, which walks item i's users and, for each, the user's items
  * j >= i.  That costs sum over users of |items of u|^2 / 2 additions, writes
  * one row at a time (cache friendly, no atomics), and counts exactly, so G
- * is the same for any thread count.  The inverse is LAPACK's Cholesky
- * factorisation and inverse (dpotrf, dpotri) in double precision through
- * OpenBLAS, which is where the items^3 cost lies.
+ * is the same for any thread count.  The inverse is a Cholesky
+ * factorisation and inverse in double precision, the steps of LAPACK's
+ * dpotrf and dpotri done block by block with OpenBLAS (so that a cancel
+ * is noticed between blocks); this is where the items^3 cost lies.
  *
  * Layout: G and P are n x n row-major doubles of which only the entries
- * j >= i of each row i are defined (the lower triangle in LAPACK's
+ * j >= i of each row i are used (the lower triangle in LAPACK's
  * column-major terms, hence uplo "L"); B is the full n x n row-major float
  * matrix.
  */
@@ -31,17 +32,20 @@
 #include <string.h>
 
 /*
- * LAPACK through OpenBLAS.  The trailing size_t is the hidden length of the
- * character argument that Fortran compilers pass; LAPACK routines written in
- * C ignore it.
+ * LAPACK through OpenBLAS.  The trailing size_t arguments are the hidden
+ * lengths of the character arguments that Fortran compilers pass; LAPACK
+ * routines written in C ignore them.
  */
 extern void dpotrf_(const char *uplo, const int *n, double *a, const int *lda,
 					int *info, size_t uplo_len);
-extern void dpotri_(const char *uplo, const int *n, double *a, const int *lda,
+extern void dtrtri_(const char *uplo, const char *diag, const int *n, double *a,
+					const int *lda, int *info, size_t uplo_len, size_t diag_len);
+extern void dlauum_(const char *uplo, const int *n, double *a, const int *lda,
 					int *info, size_t uplo_len);
 
 #define GRAM_ROWS_PER_BLOCK		8
 #define WEIGHT_ROWS_PER_BLOCK	64
+#define INVERT_BLOCK			256
 
 size_t
 aff_ease_work_bytes(int64_t n_items)
@@ -132,37 +136,156 @@ aff_ease_gram(const AffMatrix *m, double lambda, int threads, double *G,
 							gram_rows, &job, poll, poll_arg, err);
 }
 
+/* &A(r, c) of the column-major matrix A with leading dimension n */
+static inline double *
+at(double *A, int n, int r, int c)
+{
+	return A + (size_t) c * n + r;
+}
+
+static inline int
+block_len(int n, int start)
+{
+	return n - start < INVERT_BLOCK ? n - start : INVERT_BLOCK;
+}
+
+static AffStatus
+cancelled(AffPollFn poll, void *poll_arg, AffError *err)
+{
+	if (poll != NULL && poll(poll_arg))
+		return aff_fail(err, AFF_ERR_CANCELLED, "the computation was cancelled");
+	return AFF_OK;
+}
+
+/*
+ * A = L L^T in place (lower triangle), blocked right-looking: factor the
+ * diagonal block, solve the panel below it, update the trailing matrix.
+ */
+static AffStatus
+cholesky_lower(double *A, int n, double lambda, AffPollFn poll, void *poll_arg,
+			   AffError *err)
+{
+	int			k;
+
+	for (k = 0; k < n; k += INVERT_BLOCK)
+	{
+		int			kb = block_len(n, k);
+		int			rest = n - k - kb;
+		int			info = 0;
+
+		if (cancelled(poll, poll_arg, err) != AFF_OK)
+			return err->status;
+		dpotrf_("L", &kb, at(A, n, k, k), &n, &info, 1);
+		if (info > 0)
+		{
+			aff_fail(err, AFF_ERR_NUMERIC, "the EASE Gram matrix is not positive definite");
+			return aff_detail(err, "The Cholesky factorisation failed at item index %d with regularization %g.",
+							  k + info - 1, lambda);
+		}
+		if (rest == 0)
+			break;
+		cblas_dtrsm(CblasColMajor, CblasRight, CblasLower, CblasTrans, CblasNonUnit,
+					rest, kb, 1.0, at(A, n, k, k), n, at(A, n, k + kb, k), n);
+		cblas_dsyrk(CblasColMajor, CblasLower, CblasNoTrans, rest, kb, -1.0,
+					at(A, n, k + kb, k), n, 1.0, at(A, n, k + kb, k + kb), n);
+	}
+	return AFF_OK;
+}
+
+/*
+ * L := L^-1 in place, blocked from the last diagonal block up: with the
+ * trailing part already inverted, the panel below block j becomes
+ * -L22^-1 L21 L11^-1, then block j itself is inverted.
+ */
+static AffStatus
+invert_lower(double *A, int n, AffPollFn poll, void *poll_arg, AffError *err)
+{
+	int			j;
+
+	for (j = ((n - 1) / INVERT_BLOCK) * INVERT_BLOCK; j >= 0; j -= INVERT_BLOCK)
+	{
+		int			jb = block_len(n, j);
+		int			rest = n - j - jb;
+		int			info = 0;
+
+		if (cancelled(poll, poll_arg, err) != AFF_OK)
+			return err->status;
+		if (rest > 0)
+		{
+			cblas_dtrmm(CblasColMajor, CblasLeft, CblasLower, CblasNoTrans, CblasNonUnit,
+						rest, jb, 1.0, at(A, n, j + jb, j + jb), n, at(A, n, j + jb, j), n);
+			cblas_dtrsm(CblasColMajor, CblasRight, CblasLower, CblasNoTrans, CblasNonUnit,
+						rest, jb, -1.0, at(A, n, j, j), n, at(A, n, j + jb, j), n);
+		}
+		dtrtri_("L", "N", &jb, at(A, n, j, j), &n, &info, 1, 1);
+		if (info != 0)
+			return aff_fail(err, AFF_ERR_NUMERIC, "the EASE Cholesky factor is singular at item index %d",
+							j + info - 1);
+	}
+	return AFF_OK;
+}
+
+/*
+ * A := L^T L in place (lower triangle) for the lower triangular L in A,
+ * blocked by block rows: block row i of the product takes L_ii^T times
+ * the part left of it, the product of the diagonal block, and the
+ * contributions of the block rows below.
+ */
+static AffStatus
+lower_gram(double *A, int n, AffPollFn poll, void *poll_arg, AffError *err)
+{
+	int			i;
+
+	for (i = 0; i < n; i += INVERT_BLOCK)
+	{
+		int			ib = block_len(n, i);
+		int			rest = n - i - ib;
+		int			info = 0;
+
+		if (cancelled(poll, poll_arg, err) != AFF_OK)
+			return err->status;
+		if (i > 0)
+			cblas_dtrmm(CblasColMajor, CblasLeft, CblasLower, CblasTrans, CblasNonUnit,
+						ib, i, 1.0, at(A, n, i, i), n, at(A, n, i, 0), n);
+		dlauum_("L", &ib, at(A, n, i, i), &n, &info, 1);
+		if (rest == 0)
+			continue;
+		if (i > 0)
+			cblas_dgemm(CblasColMajor, CblasTrans, CblasNoTrans, ib, i, rest, 1.0,
+						at(A, n, i + ib, i), n, at(A, n, i + ib, 0), n, 1.0, at(A, n, i, 0), n);
+		cblas_dsyrk(CblasColMajor, CblasLower, CblasTrans, ib, rest, 1.0,
+					at(A, n, i + ib, i), n, 1.0, at(A, n, i, i), n);
+	}
+	return AFF_OK;
+}
+
 /*
  * Invert the symmetric positive definite G in place (the j >= i entries of
- * each row).  OpenBLAS may use `threads` threads for this call; it is set
- * back to one afterwards.  Must run on the calling thread with no worker
- * running.  Fails with AFF_ERR_NUMERIC when G is not positive definite,
- * which only a zero regularization allows.
+ * each row): G = L L^T, then G^-1 = L^-T L^-1, the steps of LAPACK's
+ * dpotri, written out by blocks of INVERT_BLOCK items so that poll is
+ * called every fraction of a second (one LAPACK call over 10,000 items
+ * would run for tens of seconds without a chance to stop).  OpenBLAS may
+ * use `threads` threads inside each call; it is set back to one on every
+ * path.  Must run on the calling thread with no worker running.  Fails
+ * with AFF_ERR_NUMERIC when G is not positive definite.
  */
 AffStatus
-aff_ease_invert(double *G, int64_t n, int threads, double lambda, AffError *err)
+aff_ease_invert(double *G, int64_t n, int threads, double lambda,
+				AffPollFn poll, void *poll_arg, AffError *err)
 {
-	int			nn = (int) n;
-	int			info = 0;
+	AffStatus	st;
 
 	if (n < 1 || n > 0x7fffffff)
 		return aff_fail(err, AFF_ERR_LIMIT, "EASE cannot invert a matrix of %lld items",
 						(long long) n);
 	openblas_set_num_threads(threads);
-	dpotrf_("L", &nn, G, &nn, &info, 1);
-	if (info == 0)
-		dpotri_("L", &nn, G, &nn, &info, 1);
+	st = cholesky_lower(G, (int) n, lambda, poll, poll_arg, err);
+	if (st == AFF_OK)
+		st = invert_lower(G, (int) n, poll, poll_arg, err);
+	if (st == AFF_OK)
+		st = lower_gram(G, (int) n, poll, poll_arg, err);
 	openblas_set_num_threads(1);
-	if (info > 0)
-	{
-		aff_fail(err, AFF_ERR_NUMERIC, "the EASE Gram matrix is not positive definite");
-		return aff_detail(err, "The Cholesky factorisation failed at item index %d with regularization %g.",
-						  info - 1, lambda);
-	}
-	if (info < 0)
-		return aff_fail(err, AFF_ERR_INVALID, "LAPACK rejected argument %d of the EASE inverse",
-						-info);
-	return AFF_OK;
+	return st;
 }
 
 typedef struct WeightJob

@@ -3,8 +3,7 @@
  *		EASE: a closed-form item-item weight matrix (Steck 2019,
  *		"Embarrassingly Shallow Autoencoders for Sparse Data", WWW 2019).
  *
- * The fit runs in three steps so that the caller can check for interrupts
- * between them (the middle one is a LAPACK call that cannot be stopped):
+ * The fit runs in three steps, each of which polls for a stop request:
  *		aff_ease_gram		G = X^T X + lambda I for the binary matrix X
  *		aff_ease_invert		P = G^-1 in place (Cholesky, double precision)
  *		aff_ease_weights	B = I - P diag(1 / diag P), then diag(B) = 0
@@ -23,7 +22,8 @@ extern AffStatus aff_ease_gram(const AffMatrix *m, double lambda, int threads,
 							   double *G, AffPollFn poll, void *poll_arg,
 							   AffError *err);
 extern AffStatus aff_ease_invert(double *G, int64_t n, int threads,
-								 double lambda, AffError *err);
+								 double lambda, AffPollFn poll, void *poll_arg,
+								 AffError *err);
 extern AffStatus aff_ease_weights(const double *P, int64_t n, int threads,
 								  float *B, AffPollFn poll, void *poll_arg,
 								  AffError *err);

@@ -323,6 +323,17 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 						   cnt[AFF_SEC_USER_FACTORS], cnt[AFF_SEC_ITEM_FACTORS]);
 	}
 
+	/* sections of another method or key type are not allowed either */
+	if ((h->method != AFF_METHOD_IMPLICIT_ALS &&
+		 (sec[AFF_SEC_USER_FACTORS] || sec[AFF_SEC_ITEM_FACTORS])) ||
+		(h->method != AFF_METHOD_EASE && sec[AFF_SEC_ITEM_WEIGHTS]) ||
+		(h->method != AFF_METHOD_ITEM_KNN &&
+		 (sec[AFF_SEC_NEIGHBOR_PTR] || sec[AFF_SEC_NEIGHBOR_IDX] || sec[AFF_SEC_NEIGHBOR_SIM])) ||
+		(h->key_type != AFF_KEYS_TEXT &&
+		 (sec[AFF_SEC_USER_TEXT_OFF] || sec[AFF_SEC_USER_TEXT] ||
+		  sec[AFF_SEC_ITEM_TEXT_OFF] || sec[AFF_SEC_ITEM_TEXT])))
+		return corrupt(err, "The value holds sections that its method (code %llu) or key type (code %llu) does not use.",
+					   h->method, h->key_type);
 	if (h->method == AFF_METHOD_EASE &&
 		(!sec[AFF_SEC_ITEM_WEIGHTS] ||
 		 cnt[AFF_SEC_ITEM_WEIGHTS] != (uint64_t) h->n_items * (uint64_t) h->n_items))

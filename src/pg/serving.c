@@ -402,7 +402,7 @@ items_like(PG_FUNCTION_ARGS)
 		uint8	   *skip = palloc0(v.h->n_items);
 
 		weights_item_row(&v, it, sims);
-		skip[it] = 1;
+		weights_item_skip(&v, it, skip);
 		emit_best(fcinfo, &v, sims, skip, cand, n_cand, k);
 	}
 	return (Datum) 0;

@@ -11,10 +11,10 @@
  * `neighbors` items whose confidence-weighted columns are closest by
  * cosine, as CSR lists.
  *
- * The engine (core/ease.c, core/knn.c) does the work on worker threads;
- * this file checks sizes, polls for interrupts, and turns engine errors
- * into ereport.  The long LAPACK call inside EASE cannot be interrupted, so
- * interrupts are also checked right before and after it.
+ * The engine (core/ease.c, core/knn.c) does the work on worker threads
+ * and in blocked BLAS/LAPACK calls; this file checks sizes, hands the
+ * engine a poll callback for interrupts, and turns engine errors into
+ * ereport.
  *
  * Serving reads the sections through the model view.  A user's score for
  * item j is the sum over the user's training items i of the weight of the
@@ -89,6 +89,14 @@ model_size_with(const AffModelParts *parts, int kind, uint64 count)
 	return size;
 }
 
+/* Bytes of the sparse matrix both ways with its key dictionaries. */
+static double
+sparse_matrix_bytes(const AffMatrix *m)
+{
+	return 2.0 * m->nnz * (sizeof(int32) + sizeof(float)) +
+		2.0 * (m->n_users + m->n_items + 1) * sizeof(int64);
+}
+
 /* Refuse a fit whose work memory would pass affinity.max_fit_memory. */
 static void
 check_fit_memory(const char *method, double need, const AffMatrix *m)
@@ -106,10 +114,13 @@ check_fit_memory(const char *method, double need, const AffMatrix *m)
 }
 
 /*
- * The EASE guards, all before anything large is allocated: max_items, the
- * size of one value (1 GB), affinity.max_fit_memory.  Peak memory is the
- * double Gram matrix plus the float weights (12 bytes per item pair) on top
- * of the sparse matrix already built.
+ * The EASE guards, all before anything large is allocated: a positive
+ * regularization, max_items, the size of one value (1 GB),
+ * affinity.max_fit_memory.  Memory peaks at one of three moments: the
+ * double Gram matrix beside the float weights (12 bytes per item pair),
+ * the weights beside the encoded model, or the model beside the copy that
+ * the executor makes of an aggregate's result; the sparse matrix (CSR both
+ * ways, dictionaries) is alive throughout.
  */
 static void
 check_ease_size(const AffMatrix *m, const FitOptions *o,
@@ -118,7 +129,16 @@ check_ease_size(const AffMatrix *m, const FitOptions *o,
 	int64		n = m->n_items;
 	uint64		size;
 	size_t		work;
+	double		need;
 
+	/* X^T X alone is singular as soon as two items have the same buyers */
+	if (!(o->regularization > 0))
+		ereport(ERROR,
+				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
+				 errmsg("ease needs a positive regularization"),
+				 errdetail("The regularization is %g.", o->regularization),
+				 errhint("Set the option \"regularization\" to a positive number; ease defaults to %g.",
+						 method_default_regularization(AFF_METHOD_EASE))));
 	if (n > o->max_items)
 		ereport(ERROR,
 				(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
@@ -137,10 +157,12 @@ check_ease_size(const AffMatrix *m, const FitOptions *o,
 	work = aff_ease_work_bytes(n);
 	if (work == 0)
 		elog(ERROR, "ease work size overflows for " INT64_FORMAT " items", n);
-	check_fit_memory("ease", (double) work + 2.0 * (double) size, m);
+	need = Max((double) work, 4.0 * n * n + (double) size);
+	need = Max(need, 2.0 * (double) size);
+	check_fit_memory("ease", need + sparse_matrix_bytes(m), m);
 }
 
-/* The EASE error that a zero regularization can cause, with a hint. */
+/* A numerical failure (a tiny regularization can cause one), with a hint. */
 static void
 ease_check_numeric(AffStatus rc, const AffError *err, const FitOptions *o)
 {
@@ -196,19 +218,22 @@ fit_ease(const AffMatrix *m, const FitOptions *o, const AffAllocator *a,
 	engine_check(rc, &err);
 	ease_notice(o, "Gram matrix", n, seconds_since(t0));
 
-	/* LAPACK cannot be interrupted: check right before and after it */
+	/* BLAS calls cannot be interrupted; the inverse polls between blocks */
 	CHECK_FOR_INTERRUPTS();
 	INSTR_TIME_SET_CURRENT(t0);
-	rc = aff_ease_invert(G, n, o->threads, o->regularization, &err);
+	rc = aff_ease_invert(G, n, o->threads, o->regularization, poll_interrupts,
+						 NULL, &err);
 	if (rc != AFF_OK)
 		ease_check_numeric(rc, &err, o);
 	ease_notice(o, "inverse", n, seconds_since(t0));
 	CHECK_FOR_INTERRUPTS();
 
+	INSTR_TIME_SET_CURRENT(t0);
 	rc = aff_ease_weights(G, n, o->threads, B, poll_interrupts, NULL, &err);
 	if (rc != AFF_OK)
 		ease_check_numeric(rc, &err, o);
 	aff_release(a, G);
+	ease_notice(o, "weights", n, seconds_since(t0));
 	parts->data[AFF_SEC_ITEM_WEIGHTS] = B;
 	parts->count[AFF_SEC_ITEM_WEIGHTS] = cells;
 }
@@ -236,7 +261,7 @@ fit_item_knn(const AffMatrix *m, const FitOptions *o, const AffAllocator *a,
 	work = aff_item_knn_work_bytes(m, &p);
 	if (work == 0)
 		elog(ERROR, "item_knn work size overflows for " INT64_FORMAT " items", m->n_items);
-	check_fit_memory("item_knn", (double) work, m);
+	check_fit_memory("item_knn", (double) work + sparse_matrix_bytes(m), m);
 
 	CHECK_FOR_INTERRUPTS();
 	INSTR_TIME_SET_CURRENT(t0);
