@@ -29,7 +29,8 @@ EXTVERSION = 1.1
 DATA = src/affinity--1.0.sql src/affinity--1.0--1.1.sql
 PGFILEDESC = "affinity - recommendation models in SQL"
 
-REGRESS = type fit serving batch metrics methods registry text_keys errors upgrade
+REGRESS = type fit serving batch metrics methods registry text_keys corrupt privileges errors upgrade
+ISOLATION = refresh_race
 REGRESS_OPTS = --inputdir=. --outputdir=. --load-extension=affinity
 
 BLAS_CFLAGS := $(shell pkg-config --cflags openblas 2>/dev/null)

@@ -5,7 +5,8 @@
 #   repo_root            the checkout's top directory, found from this file's own location
 #   ensure_deps          install the Debian packages the project needs, if any are missing
 #   build_install        build the extension with PGXS and install it into PostgreSQL 15
-#   cluster_start        start a throwaway PostgreSQL 15 cluster on a private socket and port
+#   cluster_start        start a throwaway PostgreSQL 15 cluster on a private socket and port,
+#                        with pg_cron preloaded when it is installed (AFFINITY_CRON_DB below)
 #   cluster_stop         stop it and remove its files (also run automatically on exit)
 #   cluster_log_tail [N] print the last N lines of the server log
 #   as_pg CMD...         run a command as the user that owns the cluster
@@ -22,7 +23,19 @@ export AFFINITY_PG_BIN PG_CONFIG
 
 AFFINITY_DEPS=(build-essential postgresql-15 postgresql-contrib postgresql-server-dev-15
 	libopenblas-dev python3 python3-numpy python3-scipy python3-sklearn python3-psycopg2
-	python3-matplotlib xz-utils)
+	python3-matplotlib xz-utils clang-14 libclang-rt-14-dev)
+
+# Wanted but not required: without them the cluster still starts and the tests that need them
+# skip, saying why. postgresql-15-cron is the job scheduler the scheduled-refresh test drives.
+AFFINITY_OPTIONAL_DEPS=(postgresql-15-cron)
+
+# The database in which pg_cron keeps its jobs and runs them (its cron.database_name; pg_cron
+# runs jobs only there). scripts/test sets it to its test database, affinity_test, and creates
+# that database as soon as the server is up; `AFFINITY_CRON_DB=affinity_demo scripts/demo --psql`
+# gives the demo database a scheduler. The default is postgres because it always exists: while
+# its database is missing, the pg_cron launcher exits and restarts every second, logging an error
+# each time.
+AFFINITY_CRON_DB=${AFFINITY_CRON_DB:-postgres}
 
 # Print a progress line in a recognisable form.
 say()
@@ -124,32 +137,59 @@ ensure_deps()
 			missing+=("$p")
 		fi
 	done
-	if [ ${#missing[@]} -eq 0 ]; then
-		say "dependencies: all ${#AFFINITY_DEPS[@]} Debian packages already installed"
+	local optional=()
+	for p in "${AFFINITY_OPTIONAL_DEPS[@]}"; do
+		if ! dpkg -s "$p" 2>/dev/null | grep -q '^Status: install ok installed'; then
+			optional+=("$p")
+		fi
+	done
+	if [ ${#missing[@]} -eq 0 ] && [ ${#optional[@]} -eq 0 ]; then
+		say "dependencies: all $((${#AFFINITY_DEPS[@]} + ${#AFFINITY_OPTIONAL_DEPS[@]})) Debian packages already installed"
 		return 0
 	fi
 
-	local sudo=()
+	local sudo=() can_install=1
 	if ! is_root; then
 		if command -v sudo >/dev/null 2>&1 && sudo -n true 2>/dev/null; then
 			sudo=(sudo -n)
 		else
-			die "missing Debian packages: ${missing[*]}; install them with: sudo apt-get install ${missing[*]}"
+			can_install=0
 		fi
 	fi
-	command -v apt-get >/dev/null 2>&1 ||
-		die "missing packages ${missing[*]} and no apt-get here (the project targets Debian 12)"
+	command -v apt-get >/dev/null 2>&1 || can_install=0
+	if [ "$can_install" -eq 0 ]; then
+		[ ${#missing[@]} -eq 0 ] ||
+			die "missing Debian packages: ${missing[*]}; install them with: sudo apt-get install ${missing[*]}"
+		say "dependencies: optional ${optional[*]} not installed and no way to install them here (the tests that need them skip)"
+		return 0
+	fi
 
 	local log
 	work_dir
 	log="$AFF_WORK/apt.log"
-	if ! { "${sudo[@]}" apt-get update &&
-		"${sudo[@]}" env DEBIAN_FRONTEND=noninteractive apt-get install -y --no-install-recommends \
-			"${missing[@]}"; } >"$log" 2>&1; then
-		tail -n 40 "$log"
-		die "apt-get could not install: ${missing[*]}"
+	if ! "${sudo[@]}" apt-get update >"$log" 2>&1; then
+		if [ ${#missing[@]} -gt 0 ]; then
+			tail -n 40 "$log"
+			die "apt-get update failed; cannot install: ${missing[*]}"
+		fi
+		# the package lists may still be good enough for the optional packages
 	fi
-	say "dependencies: installed ${missing[*]}"
+	if [ ${#missing[@]} -gt 0 ]; then
+		if ! "${sudo[@]}" env DEBIAN_FRONTEND=noninteractive apt-get install -y \
+			--no-install-recommends "${missing[@]}" >>"$log" 2>&1; then
+			tail -n 40 "$log"
+			die "apt-get could not install: ${missing[*]}"
+		fi
+		say "dependencies: installed ${missing[*]}"
+	fi
+	if [ ${#optional[@]} -gt 0 ]; then
+		if "${sudo[@]}" env DEBIAN_FRONTEND=noninteractive apt-get install -y \
+			--no-install-recommends "${optional[@]}" >>"$log" 2>&1; then
+			say "dependencies: installed ${optional[*]}"
+		else
+			say "dependencies: could not install optional ${optional[*]} (the tests that need them skip)"
+		fi
+	fi
 }
 
 # ---------------------------------------------------------------------------
@@ -215,6 +255,12 @@ _aff_port_busy()
 # directory and no TCP listener. Exports PGHOST, PGPORT, PGUSER for psql and friends. The
 # cluster is stopped and its directory removed when the script exits; after a failure the tail
 # of the server log is printed first.
+#
+# When pg_cron is installed it is preloaded, with cron.database_name = $AFFINITY_CRON_DB (create
+# that database right after this function returns) and cron.host = the socket directory, since
+# the server has no TCP listener and pg_cron opens an ordinary client connection for each job.
+# AFF_PG_CRON is 1 when pg_cron is preloaded, else 0.
+AFF_PG_CRON=0
 cluster_start()
 {
 	local base port
@@ -240,6 +286,15 @@ cluster_start()
 	fi
 	# Throwaway data: durability buys nothing here, speed does.
 	as_pg sh -c "printf '%s\n' 'fsync = off' 'synchronous_commit = off' 'full_page_writes = off' >> '$AFF_CLUSTER_DATA/postgresql.conf'"
+	AFF_PG_CRON=0
+	if [ -f "$("$PG_CONFIG" --pkglibdir)/pg_cron.so" ]; then
+		[[ $AFFINITY_CRON_DB =~ ^[A-Za-z0-9_]+$ ]] ||
+			die "AFFINITY_CRON_DB must be a plain database name, not '$AFFINITY_CRON_DB'"
+		as_pg sh -c "printf '%s\n' \"shared_preload_libraries = 'pg_cron'\" \
+			\"cron.database_name = '$AFFINITY_CRON_DB'\" \"cron.host = '$base/sock'\" \
+			>> '$AFF_CLUSTER_DATA/postgresql.conf'"
+		AFF_PG_CRON=1
+	fi
 
 	port=${AFFINITY_TEST_PORT:-54329}
 	for _ in 1 2 3 4 5 6 7 8 9 10; do
@@ -252,6 +307,14 @@ cluster_start()
 			AFF_CLUSTER_UP=1
 			break
 		fi
+		if [ "$AFF_PG_CRON" -eq 1 ] && grep -q 'pg_cron' "$AFF_CLUSTER_DATA/log" 2>/dev/null; then
+			# a broken pg_cron must not keep the server down: the last setting wins
+			say "the server did not start with pg_cron preloaded; starting it without pg_cron"
+			tail -n 5 "$AFF_CLUSTER_DATA/log"
+			as_pg sh -c "echo \"shared_preload_libraries = ''\" >> '$AFF_CLUSTER_DATA/postgresql.conf'"
+			AFF_PG_CRON=0
+			continue
+		fi
 		port=$((port + 1))
 	done
 	if [ "$AFF_CLUSTER_UP" -ne 1 ]; then
@@ -262,7 +325,11 @@ cluster_start()
 	unset PGHOSTADDR PGSERVICE PGDATABASE PGPASSWORD PGSSLMODE
 	export PGHOST=$base/sock PGPORT=$port PGUSER=postgres
 	export PATH="$AFFINITY_PG_BIN:$PATH"
-	say "PostgreSQL $("$AFFINITY_PG_BIN/postgres" -V | awk '{print $3}') running: socket $PGHOST, port $PGPORT"
+	if [ "$AFF_PG_CRON" -eq 1 ]; then
+		say "PostgreSQL $("$AFFINITY_PG_BIN/postgres" -V | awk '{print $3}') running: socket $PGHOST, port $PGPORT; pg_cron preloaded for database $AFFINITY_CRON_DB"
+	else
+		say "PostgreSQL $("$AFFINITY_PG_BIN/postgres" -V | awk '{print $3}') running: socket $PGHOST, port $PGPORT; pg_cron not installed"
+	fi
 }
 
 # Print the last lines of the server log (for failures).

@@ -2,6 +2,7 @@
 -- The model registry: define, refresh, get, history and revert; a failed
 -- refresh keeps the current model; forget_user.
 --
+\set SHOW_CONTEXT never
 CREATE TABLE reg_buys AS
 SELECT u::bigint AS customer, (CASE WHEN u <= 30 THEN 0 ELSE 12 END + i)::bigint AS product,
        1::real AS qty
@@ -39,6 +40,36 @@ UPDATE reg_buys SET qty = -1 WHERE customer = 5 AND product = (SELECT min(produc
 SELECT affinity.refresh('shop');
 SELECT version AS after, (affinity.describe(model)->>'users')::int AS users FROM affinity.models WHERE name = 'shop';
 UPDATE reg_buys SET qty = 1 WHERE qty < 0;
+
+-- whoever writes a model's query becomes its owner, and refresh runs the
+-- query with the owner's rights, never with the caller's
+CREATE ROLE reg_writer;
+GRANT SELECT, UPDATE ON affinity.models TO reg_writer;
+SET ROLE reg_writer;
+UPDATE affinity.models SET source_query = 'SELECT customer AS user_id, product AS item_id, qty AS weight FROM reg_buys WHERE customer < 40'
+WHERE name = 'shop';
+RESET ROLE;
+SELECT owner FROM affinity.models WHERE name = 'shop';
+-- the superuser's refresh runs the query as reg_writer, who may not read reg_buys
+SELECT affinity.refresh('shop');
+GRANT SELECT ON reg_buys TO reg_writer;
+GRANT SELECT, INSERT, DELETE ON affinity.model_history TO reg_writer;
+SELECT (affinity.refresh('shop'))->'users' AS users;
+-- a caller who is not a member of the owner role is refused
+CREATE ROLE reg_other;
+GRANT SELECT, UPDATE (model, version, fitted_at, stats) ON affinity.models TO reg_other;
+SET SESSION AUTHORIZATION reg_other;
+SELECT affinity.refresh('shop');
+RESET SESSION AUTHORIZATION;
+-- put the query back as the superuser (who becomes the owner again)
+UPDATE affinity.models SET source_query = 'SELECT customer AS user_id, product AS item_id, qty AS weight FROM reg_buys'
+WHERE name = 'shop';
+SELECT owner = current_user AS owner_back FROM affinity.models WHERE name = 'shop';
+REVOKE ALL ON affinity.models FROM reg_writer, reg_other;
+REVOKE ALL ON affinity.model_history FROM reg_writer;
+REVOKE ALL ON reg_buys FROM reg_writer;
+DROP ROLE reg_writer;
+DROP ROLE reg_other;
 
 -- bad definitions
 SELECT affinity.define_model('bad', 'SELECT 1 AS a', '{}');

@@ -13,6 +13,7 @@ CREATE TABLE affinity.models (
 	source_query text NOT NULL,
 	options jsonb NOT NULL DEFAULT '{}',
 	search_path text NOT NULL DEFAULT '',	-- the definer's, for the query's names
+	owner name NOT NULL DEFAULT current_user,	-- the query runs as this role
 	keep_versions integer NOT NULL DEFAULT 3 CHECK (keep_versions >= 1),
 	version integer NOT NULL DEFAULT 0,
 	model affinity.model,
@@ -31,19 +32,42 @@ CREATE TABLE affinity.model_history (
 );
 COMMENT ON TABLE affinity.model_history IS 'the last keep_versions models of each name, for affinity.revert_model';
 
+-- Whoever writes a model's query (or its search_path) becomes its owner, and
+-- refresh runs the query as the owner: a role allowed to change a query can
+-- never make another role's refresh run code with that role's rights.
+CREATE FUNCTION affinity.models_set_owner()
+	RETURNS trigger
+	LANGUAGE plpgsql
+	SET search_path = pg_catalog, pg_temp
+AS $$
+BEGIN
+	IF TG_OP = 'INSERT'
+	   OR NEW.source_query IS DISTINCT FROM OLD.source_query
+	   OR NEW.search_path IS DISTINCT FROM OLD.search_path
+	   OR NEW.owner IS DISTINCT FROM OLD.owner THEN
+		NEW.owner := current_user;
+	END IF;
+	RETURN NEW;
+END
+$$;
+CREATE TRIGGER models_set_owner BEFORE INSERT OR UPDATE ON affinity.models
+	FOR EACH ROW EXECUTE FUNCTION affinity.models_set_owner();
+
 -- pg_dump keeps the rows of both tables
 SELECT pg_catalog.pg_extension_config_dump('affinity.models', '');
 SELECT pg_catalog.pg_extension_config_dump('affinity.model_history', '');
 
--- define_model has no SET search_path clause on purpose: it records the
--- caller's search_path, under which the source query's names are resolved
--- at every refresh.  Its body uses schema-qualified names only.
-CREATE FUNCTION affinity.define_model(name text, source_query text, options jsonb DEFAULT '{}')
+-- The source query's names are resolved at every refresh with the search
+-- path given here; the default is evaluated in the caller's session (a
+-- parameter default is filled in at the call), so it is the definer's path.
+CREATE FUNCTION affinity.define_model(name text, source_query text, options jsonb DEFAULT '{}',
+		query_search_path text DEFAULT pg_catalog.current_setting('search_path'))
 	RETURNS void
 	LANGUAGE plpgsql VOLATILE
+	SET search_path = pg_catalog, pg_temp
 AS $$
 BEGIN
-	IF name IS NULL OR source_query IS NULL OR options IS NULL THEN
+	IF name IS NULL OR source_query IS NULL OR options IS NULL OR query_search_path IS NULL THEN
 		RAISE EXCEPTION 'name, source_query and options must not be NULL'
 			USING ERRCODE = 'null_value_not_allowed';
 	END IF;
@@ -53,6 +77,7 @@ BEGIN
 				  DETAIL = pg_catalog.format('The options given are %s.', options);
 	END IF;
 	-- the query must yield user_id, item_id and weight
+	PERFORM pg_catalog.set_config('search_path', query_search_path, true);
 	BEGIN
 		EXECUTE pg_catalog.format('SELECT user_id::bigint, item_id::bigint, weight::real FROM (%s) AS q LIMIT 0',
 								  source_query);
@@ -62,15 +87,16 @@ BEGIN
 				  DETAIL = SQLERRM,
 				  HINT = 'The query must yield columns user_id, item_id and weight (castable to bigint, bigint, real).';
 	END;
+	PERFORM pg_catalog.set_config('search_path', 'pg_catalog, pg_temp', true);
 	INSERT INTO affinity.models AS m (name, source_query, options, search_path)
 	VALUES (define_model.name, define_model.source_query, define_model.options,
-			pg_catalog.current_setting('search_path'))
+			define_model.query_search_path)
 	ON CONFLICT ON CONSTRAINT models_pkey DO UPDATE
 		SET source_query = EXCLUDED.source_query, options = EXCLUDED.options,
 			search_path = EXCLUDED.search_path;
 END
 $$;
-COMMENT ON FUNCTION affinity.define_model(text, text, jsonb) IS 'register (or redefine) a named model: the query that yields user_id, item_id, weight, and the fit options';
+COMMENT ON FUNCTION affinity.define_model(text, text, jsonb, text) IS 'register (or redefine) a named model: the query that yields user_id, item_id, weight, and the fit options';
 
 CREATE FUNCTION affinity.refresh(name text)
 	RETURNS jsonb
@@ -84,6 +110,7 @@ DECLARE
 	d jsonb;
 	result jsonb;
 	new_version integer;
+	caller_role text;
 	msg text;
 	detail text;
 BEGIN
@@ -94,18 +121,33 @@ BEGIN
 			USING ERRCODE = 'undefined_object',
 				  HINT = 'Register it first with affinity.define_model(name, source_query, options).';
 	END IF;
-	-- the query's names resolve as they did for whoever defined it
+	-- the query runs as its owner, with the names as its owner saw them
+	caller_role := current_setting('role');
+	IF r.owner <> current_user THEN
+		BEGIN
+			PERFORM set_config('role', r.owner, true);
+		EXCEPTION WHEN insufficient_privilege THEN
+			RAISE EXCEPTION 'refresh of model "%" must run as a member of its owner %', name, r.owner
+				USING ERRCODE = 'insufficient_privilege',
+					  DETAIL = pg_catalog.format('The model''s query was last written by %s; it runs with that role''s rights.', r.owner),
+					  HINT = pg_catalog.format('Call refresh as %s (or a member of it), or redefine the model as the calling role.', r.owner);
+		END;
+	END IF;
 	PERFORM set_config('search_path', r.search_path, true);
 	BEGIN
 		EXECUTE format('SELECT affinity.fit(user_id::bigint, item_id::bigint, weight::real, $1) FROM (%s) AS q',
 					   r.source_query)
 			INTO fitted USING r.options;
 		PERFORM set_config('search_path', 'pg_catalog, pg_temp', true);
+		PERFORM set_config('role', caller_role, true);
 	EXCEPTION WHEN OTHERS THEN
 		GET STACKED DIAGNOSTICS msg = MESSAGE_TEXT, detail = PG_EXCEPTION_DETAIL;
+		IF coalesce(detail, '') = '' THEN
+			RAISE EXCEPTION 'refresh of model "%" failed: %', name, msg
+				USING ERRCODE = SQLSTATE, HINT = 'The current model stays in place.';
+		END IF;
 		RAISE EXCEPTION 'refresh of model "%" failed: %', name, msg
-			USING ERRCODE = SQLSTATE,
-				  DETAIL = coalesce(detail, ''),
+			USING ERRCODE = SQLSTATE, DETAIL = detail,
 				  HINT = 'The current model stays in place.';
 	END;
 	-- after a revert the current version is not the newest one kept

@@ -3,6 +3,10 @@
 -- complain if script is sourced in psql, rather than via CREATE EXTENSION
 \echo Use "CREATE EXTENSION affinity" to load this file. \quit
 
+-- Any role may use the extension's functions; what it can fit from or serve
+-- is governed by the privileges on its own tables.
+GRANT USAGE ON SCHEMA affinity TO PUBLIC;
+
 -- The model type ---------------------------------------------------------
 
 CREATE TYPE affinity.model;

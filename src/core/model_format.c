@@ -401,8 +401,9 @@ check_text_keys(const int64_t *keys, int64_t n, const int64_t *off, const char *
 					   (uint64_t) off[0], (uint64_t) off[n]);
 	for (i = 0; i < n; i++)
 	{
-		if (off[i + 1] < off[i])
-			return corrupt(err, "Text key offsets decrease at index %llu.", (uint64_t) i, 0);
+		if (off[i + 1] < off[i] || (uint64_t) off[i + 1] > len)
+			return corrupt(err, "Text key offsets decrease or run past the end at index %llu.",
+						   (uint64_t) i, 0);
 		if (aff_text_key(text + off[i], (size_t) (off[i + 1] - off[i])) != keys[i])
 		{
 			aff_fail(err, AFF_ERR_CORRUPT, "invalid affinity.model value");
@@ -470,8 +471,8 @@ check_content(const AffModelView *v, AffError *err)
 					   (uint64_t) v->seen_ptr[0], (uint64_t) v->seen_ptr[h->n_users]);
 	for (u = 0; u < h->n_users; u++)
 	{
-		if (v->seen_ptr[u + 1] < v->seen_ptr[u])
-			return corrupt(err, "Training list offsets decrease at user index %llu.",
+		if (v->seen_ptr[u + 1] < v->seen_ptr[u] || v->seen_ptr[u + 1] > h->nnz)
+			return corrupt(err, "Training list offsets decrease or run past the end at user index %llu.",
 						   (uint64_t) u, 0);
 		for (j = v->seen_ptr[u]; j < v->seen_ptr[u + 1]; j++)
 		{
@@ -531,8 +532,8 @@ check_content(const AffModelView *v, AffError *err)
 		{
 			int64_t		k;
 
-			if (v->neighbor_ptr[j + 1] < v->neighbor_ptr[j])
-				return corrupt(err, "Neighbour offsets decrease at item index %llu.",
+			if (v->neighbor_ptr[j + 1] < v->neighbor_ptr[j] || v->neighbor_ptr[j + 1] > total)
+				return corrupt(err, "Neighbour offsets decrease or run past the end at item index %llu.",
 							   (uint64_t) j, 0);
 			for (k = v->neighbor_ptr[j]; k < v->neighbor_ptr[j + 1]; k++)
 				if (v->neighbor_idx[k] < 0 || v->neighbor_idx[k] >= h->n_items ||

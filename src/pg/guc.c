@@ -62,9 +62,9 @@ _PG_init(void)
 							 PGC_USERSET, 0, NULL, NULL, NULL);
 	DefineCustomIntVariable("affinity.max_fit_memory",
 							"A fit whose estimated memory exceeds this stops before allocating.",
-							NULL,
+							"Only superusers can change it, so it bounds every role's fits.",
 							&affinity_max_fit_memory_mb, 8192, 1, INT_MAX,
-							PGC_USERSET, GUC_UNIT_MB, NULL, NULL, NULL);
+							PGC_SUSET, GUC_UNIT_MB, NULL, NULL, NULL);
 	DefineCustomIntVariable("affinity.model_cache_size",
 							"Memory for models kept decoded between calls in one backend.",
 							"Least recently used models are dropped first; the model in use always stays.",

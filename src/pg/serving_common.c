@@ -18,13 +18,24 @@ jsonb_from_cstring(const char *s)
 	return DatumGetJsonbP(DirectFunctionCall1(jsonb_in, CStringGetDatum(s)));
 }
 
+/*
+ * Set up materialize mode.  When the executor gives the expected row type,
+ * use it instead of looking the function's result type up again: that
+ * lookup allocates in the per-query context, which a LATERAL call per row
+ * would grow until the query ends.
+ */
 void
 materialize(FunctionCallInfo fcinfo)
 {
+	ReturnSetInfo *rsinfo = (ReturnSetInfo *) fcinfo->resultinfo;
+	bits32		flags = 0;
+
+	if (rsinfo != NULL && IsA(rsinfo, ReturnSetInfo) && rsinfo->expectedDesc != NULL)
+		flags = MAT_SRF_USE_EXPECTED_DESC;
 #if PG_VERSION_NUM >= 150001
-	InitMaterializedSRF(fcinfo, 0);
+	InitMaterializedSRF(fcinfo, flags);
 #else
-	SetSingleFuncCall(fcinfo, 0);
+	SetSingleFuncCall(fcinfo, flags);
 #endif
 }
 
