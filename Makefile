@@ -37,7 +37,7 @@ BLAS_CFLAGS := $(shell pkg-config --cflags openblas 2>/dev/null)
 BLAS_LIBS := $(shell pkg-config --libs openblas 2>/dev/null || echo -lopenblas)
 
 PG_CPPFLAGS = $(BLAS_CFLAGS) -DAFFINITY_VERSION=\"$(EXTVERSION)\"
-PG_CFLAGS = -std=gnu11 -O3 -pthread
+PG_CFLAGS = -std=gnu11 -O3 -pthread -fopenmp-simd
 SHLIB_LINK = $(BLAS_LIBS) -pthread -lm
 
 EXTRA_CLEAN = results regression.diffs regression.out

@@ -58,14 +58,128 @@ aff_find_key(const int64_t *keys, int64_t n, int64_t key)
 	return (lo < n && keys[lo] == key) ? lo : -1;
 }
 
-/* Sort rows by (user, item) and sum duplicates; returns the distinct count. */
+/*
+ * Byte b (0 = lowest) of the sort key of a row at pass `pass`: passes 0-3
+ * are the weight's bits (non-negative floats order like their bit
+ * patterns), 4-11 the item, 12-19 the user; signed keys get their sign bit
+ * flipped so that they order as unsigned numbers.
+ */
+static inline unsigned
+triple_byte(const AffTriple *t, int pass)
+{
+	uint64_t	k;
+	uint32_t	w;
+
+	if (pass < 4)
+	{
+		memcpy(&w, &t->weight, 4);
+		return (w >> (8 * pass)) & 0xff;
+	}
+	k = (uint64_t) (pass < 12 ? t->item : t->user) ^ 0x8000000000000000ULL;
+	return (unsigned) (k >> (8 * ((pass - 4) % 8))) & 0xff;
+}
+
+/*
+ * LSD radix sort of rows by (user, item, weight), using tmp (n rows) as the
+ * second buffer.  Passes whose byte is the same for every row are skipped,
+ * so ids that fit in a few bytes cost a few passes.  Stable and O(n) per
+ * pass; it replaces an O(n log n) comparison sort on the fit's hot path.
+ */
+static void
+radix_sort_triples(AffTriple *rows, AffTriple *tmp, int64_t n)
+{
+	AffTriple  *src = rows;
+	AffTriple  *dst = tmp;
+	int			pass;
+
+	for (pass = 0; pass < 20; pass++)
+	{
+		int64_t		count[256] = {0};
+		int64_t		i;
+		int64_t		at = 0;
+		int			b;
+
+		for (i = 0; i < n; i++)
+			count[triple_byte(&src[i], pass)]++;
+		if (count[triple_byte(&src[0], pass)] == n)
+			continue;
+		for (b = 0; b < 256; b++)
+		{
+			int64_t		c = count[b];
+
+			count[b] = at;
+			at += c;
+		}
+		for (i = 0; i < n; i++)
+			dst[count[triple_byte(&src[i], pass)]++] = src[i];
+		{
+			AffTriple  *t = src;
+
+			src = dst;
+			dst = t;
+		}
+	}
+	if (src != rows)
+		memcpy(rows, src, sizeof(AffTriple) * (size_t) n);
+}
+
+/* LSD radix sort of int64 keys, tmp holding n more. */
+static void
+radix_sort_int64(int64_t *keys, int64_t *tmp, int64_t n)
+{
+	int64_t    *src = keys;
+	int64_t    *dst = tmp;
+	int			pass;
+
+	for (pass = 0; pass < 8; pass++)
+	{
+		int64_t		count[256] = {0};
+		int64_t		i;
+		int64_t		at = 0;
+		int			b;
+
+#define KEYBYTE(k) ((unsigned) ((((uint64_t) (k)) ^ 0x8000000000000000ULL) >> (8 * pass)) & 0xff)
+		for (i = 0; i < n; i++)
+			count[KEYBYTE(src[i])]++;
+		if (count[KEYBYTE(src[0])] == n)
+			continue;
+		for (b = 0; b < 256; b++)
+		{
+			int64_t		c = count[b];
+
+			count[b] = at;
+			at += c;
+		}
+		for (i = 0; i < n; i++)
+			dst[count[KEYBYTE(src[i])]++] = src[i];
+#undef KEYBYTE
+		{
+			int64_t    *t = src;
+
+			src = dst;
+			dst = t;
+		}
+	}
+	if (src != keys)
+		memcpy(keys, src, sizeof(int64_t) * (size_t) n);
+}
+
+/*
+ * Sort rows by (user, item) and sum duplicates; returns the distinct count.
+ * tmp, when not NULL, is scratch for n rows (radix sort); without it the
+ * rows are sorted by comparison.  Duplicates are ordered by weight so they
+ * are summed in a fixed order.
+ */
 static int64_t
-merge_duplicates(AffTriple *rows, int64_t n)
+merge_duplicates(AffTriple *rows, int64_t n, AffTriple *tmp)
 {
 	int64_t		out = 0;
 	int64_t		i;
 
-	qsort(rows, (size_t) n, sizeof(AffTriple), cmp_triple);
+	if (tmp != NULL && n > 0)
+		radix_sort_triples(rows, tmp, n);
+	else
+		qsort(rows, (size_t) n, sizeof(AffTriple), cmp_triple);
 	for (i = 0; i < n; i++)
 	{
 		if (out > 0 && rows[out - 1].user == rows[i].user &&
@@ -90,7 +204,9 @@ count_items(const AffTriple *rows, int64_t n, int64_t *items, int64_t *counts)
 
 	for (i = 0; i < n; i++)
 		items[i] = rows[i].item;
-	qsort(items, (size_t) n, sizeof(int64_t), cmp_int64);
+	/* counts is free until the loop below: use it as the radix scratch */
+	if (n > 0)
+		radix_sort_int64(items, counts, n);
 	for (i = 0; i < n; i++)
 	{
 		if (n_items > 0 && items[n_items - 1] == items[i])
@@ -215,7 +331,13 @@ aff_matrix_build(AffTriple *rows, int64_t n_rows, int min_user, int min_item,
 	AffStatus	st;
 
 	memset(m, 0, sizeof(*m));
-	n = merge_duplicates(rows, n_rows);
+	{
+		AffTriple  *tmp = aff_alloc_array(a, (size_t) n_rows, sizeof(AffTriple));
+
+		/* without scratch memory, fall back to a comparison sort */
+		n = merge_duplicates(rows, n_rows, tmp);
+		aff_release(a, tmp);
+	}
 	m->duplicates_summed = n_rows - n;
 	for (i = 0; i < n; i++)
 	{
@@ -260,7 +382,15 @@ aff_matrix_build(AffTriple *rows, int64_t n_rows, int min_user, int min_item,
 		return aff_fail(err, AFF_ERR_NOMEM, "out of memory building the interaction matrix");
 	for (i = 0; i < n; i++)
 		items[i] = rows[i].item;
-	qsort(items, (size_t) n, sizeof(int64_t), cmp_int64);
+	{
+		int64_t    *tmp = aff_alloc_array(a, (size_t) n, sizeof(int64_t));
+
+		if (tmp != NULL)
+			radix_sort_int64(items, tmp, n);
+		else
+			qsort(items, (size_t) n, sizeof(int64_t), cmp_int64);
+		aff_release(a, tmp);
+	}
 	m->n_items = 0;
 	for (i = 0; i < n; i++)
 		if (i == 0 || items[i] != items[i - 1])

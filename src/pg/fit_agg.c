@@ -375,7 +375,7 @@ estimate_fit_bytes(const FitState *st, double n_rows, double users, double items
 	double		f = st->opts.method == AFF_METHOD_IMPLICIT_ALS ? st->opts.factors : 0;
 	double		entities = users + items;
 
-	return n_rows * sizeof(AffTriple) * 1.5	/* rows and sort scratch */
+	return n_rows * sizeof(AffTriple) * 2.0	/* rows and radix-sort scratch */
 		+ n_rows * 32.0 + entities * 24.0	/* CSR both ways, dictionaries */
 		+ n_rows * 8.0				/* confidences */
 		+ 3.0 * entities * f * 4.0	/* factors in the fit and two model copies */
