@@ -12,6 +12,7 @@
 
 #include "postgres.h"
 #include "fmgr.h"
+#include "portability/instr_time.h"
 #include "utils/jsonb.h"
 
 #include "../core/aff_core.h"
@@ -55,6 +56,9 @@ extern int	resolve_threads(int requested);
 /* Engine glue (model_io.c) */
 extern AffAllocator context_allocator(MemoryContext cxt);
 extern void report_engine_error(const AffError *err) pg_attribute_noreturn();
+extern int	engine_poll(void *arg);
+extern void engine_check(AffStatus rc, const AffError *err);
+extern double seconds_since(instr_time start);
 
 /* Model values (model_io.c) */
 extern bytea *model_build(const AffModelParts *parts);

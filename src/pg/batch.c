@@ -90,13 +90,6 @@ batch_block(void *arg, int thread_no, int64 block_no, int64 begin, int64 end)
 				   job->out + (size_t) r * job->k, &job->kept[r]);
 }
 
-static int
-poll_cancel(void *arg)
-{
-	(void) arg;
-	return QueryCancelPending || ProcDiePending;
-}
-
 /* Emit the rows of users[0..n) from out/kept. */
 static void
 emit_chunk(FunctionCallInfo fcinfo, const AffModelView *v, const int32 *users,
@@ -199,12 +192,8 @@ top_items_for_all(PG_FUNCTION_ARGS)
 		job.users = users + c;
 		if (v.h->method == AFF_METHOD_IMPLICIT_ALS)
 		{
-			if (aff_parallel_for(threads, n, job.block, batch_block, &job,
-								 poll_cancel, NULL, &err) != AFF_OK)
-			{
-				CHECK_FOR_INTERRUPTS();
-				report_engine_error(&err);
-			}
+			engine_check(aff_parallel_for(threads, n, job.block, batch_block, &job,
+										  engine_poll, NULL, &err), &err);
 		}
 		else
 		{

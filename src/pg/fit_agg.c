@@ -343,24 +343,6 @@ affinity_fit_deserialfn(PG_FUNCTION_ARGS)
 	PG_RETURN_POINTER(st);
 }
 
-/* Poll callback for the engine: stop when the backend must cancel or die. */
-static int
-poll_interrupts(void *arg)
-{
-	(void) arg;
-	return QueryCancelPending || ProcDiePending;
-}
-
-/* After the engine stopped on a poll: raise the pending cancel. */
-static void
-raise_cancel(void)
-{
-	CHECK_FOR_INTERRUPTS();
-	ereport(ERROR,
-			(errcode(ERRCODE_QUERY_CANCELED),
-			 errmsg("affinity.fit was interrupted")));
-}
-
 /*
  * Peak memory of the final step, to refuse a fit over
  * affinity.max_fit_memory before anything large is allocated: the rows, the
@@ -477,16 +459,6 @@ item_popularity(const AffMatrix *m)
 	return pop;
 }
 
-static double
-seconds_since(instr_time start)
-{
-	instr_time	now;
-
-	INSTR_TIME_SET_CURRENT(now);
-	INSTR_TIME_SUBTRACT(now, start);
-	return INSTR_TIME_GET_DOUBLE(now);
-}
-
 /*
  * Show the fit's phase in the process title (ps, top), so an operator can
  * follow a long fit from outside; the title is put back when the fit ends.
@@ -531,11 +503,8 @@ run_als(const FitState *st, const AffMatrix *m, AffModelParts *parts,
 		CHECK_FOR_INTERRUPTS();
 		show_phase(psprintf("affinity.fit sweep %d of %d", s + 1, o->iterations));
 		INSTR_TIME_SET_CURRENT(t0);
-		rc = aff_als_sweep(als, &loss[s], poll_interrupts, NULL, &err);
-		if (rc == AFF_ERR_CANCELLED)
-			raise_cancel();
-		if (rc != AFF_OK)
-			report_engine_error(&err);
+		rc = aff_als_sweep(als, &loss[s], engine_poll, NULL, &err);
+		engine_check(rc, &err);
 		secs[s] = seconds_since(t0);
 		total += secs[s];
 		if (o->verbose)

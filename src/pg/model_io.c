@@ -14,6 +14,7 @@
 
 #include "common/base64.h"
 #include "libpq/pqformat.h"
+#include "miscadmin.h"
 #include "utils/memutils.h"
 
 /* Largest value we build: a varlena holds at most 1 GB. */
@@ -79,6 +80,47 @@ report_engine_error(const AffError *err)
 			 errmsg("%s", err->msg),
 			 err->detail[0] ? errdetail("%s", err->detail) : 0));
 	pg_unreachable();
+}
+
+/*
+ * Poll callback for the engine: stop when the backend must cancel or die.
+ * Only reads flags, so it is safe while workers run.
+ */
+int
+engine_poll(void *arg)
+{
+	(void) arg;
+	return QueryCancelPending || ProcDiePending;
+}
+
+/*
+ * Raise the engine's error for rc (nothing for AFF_OK).  A cancellation
+ * becomes the pending interrupt, raised on the backend's own stack.
+ */
+void
+engine_check(AffStatus rc, const AffError *err)
+{
+	if (rc == AFF_OK)
+		return;
+	if (rc == AFF_ERR_CANCELLED)
+	{
+		CHECK_FOR_INTERRUPTS();
+		ereport(ERROR,
+				(errcode(ERRCODE_QUERY_CANCELED),
+				 errmsg("affinity was interrupted")));
+	}
+	report_engine_error(err);
+}
+
+/* Seconds since start, for timings kept in the model. */
+double
+seconds_since(instr_time start)
+{
+	instr_time	now;
+
+	INSTR_TIME_SET_CURRENT(now);
+	INSTR_TIME_SUBTRACT(now, start);
+	return INSTR_TIME_GET_DOUBLE(now);
 }
 
 /* Encode parts into a new varlena in CurrentMemoryContext. */

@@ -29,40 +29,6 @@
 #include "../core/ease.h"
 #include "../core/knn.h"
 
-/* Poll callback for the engine: stop when the backend must cancel or die. */
-static int
-poll_interrupts(void *arg)
-{
-	(void) arg;
-	return QueryCancelPending || ProcDiePending;
-}
-
-/* Raise the engine's error; a cancellation becomes the pending interrupt. */
-static void
-engine_check(AffStatus rc, const AffError *err)
-{
-	if (rc == AFF_OK)
-		return;
-	if (rc == AFF_ERR_CANCELLED)
-	{
-		CHECK_FOR_INTERRUPTS();
-		ereport(ERROR,
-				(errcode(ERRCODE_QUERY_CANCELED),
-				 errmsg("affinity.fit was interrupted")));
-	}
-	report_engine_error(err);
-}
-
-static double
-seconds_since(instr_time start)
-{
-	instr_time	now;
-
-	INSTR_TIME_SET_CURRENT(now);
-	INSTR_TIME_SUBTRACT(now, start);
-	return INSTR_TIME_GET_DOUBLE(now);
-}
-
 static double
 megabytes(double bytes)
 {
@@ -214,14 +180,14 @@ fit_ease(const AffMatrix *m, const FitOptions *o, const AffAllocator *a,
 
 	CHECK_FOR_INTERRUPTS();
 	INSTR_TIME_SET_CURRENT(t0);
-	rc = aff_ease_gram(m, o->regularization, o->threads, G, poll_interrupts, NULL, &err);
+	rc = aff_ease_gram(m, o->regularization, o->threads, G, engine_poll, NULL, &err);
 	engine_check(rc, &err);
 	ease_notice(o, "Gram matrix", n, seconds_since(t0));
 
 	/* BLAS calls cannot be interrupted; the inverse polls between blocks */
 	CHECK_FOR_INTERRUPTS();
 	INSTR_TIME_SET_CURRENT(t0);
-	rc = aff_ease_invert(G, n, o->threads, o->regularization, poll_interrupts,
+	rc = aff_ease_invert(G, n, o->threads, o->regularization, engine_poll,
 						 NULL, &err);
 	if (rc != AFF_OK)
 		ease_check_numeric(rc, &err, o);
@@ -229,7 +195,7 @@ fit_ease(const AffMatrix *m, const FitOptions *o, const AffAllocator *a,
 	CHECK_FOR_INTERRUPTS();
 
 	INSTR_TIME_SET_CURRENT(t0);
-	rc = aff_ease_weights(G, n, o->threads, B, poll_interrupts, NULL, &err);
+	rc = aff_ease_weights(G, n, o->threads, B, engine_poll, NULL, &err);
 	if (rc != AFF_OK)
 		ease_check_numeric(rc, &err, o);
 	aff_release(a, G);
@@ -265,7 +231,7 @@ fit_item_knn(const AffMatrix *m, const FitOptions *o, const AffAllocator *a,
 
 	CHECK_FOR_INTERRUPTS();
 	INSTR_TIME_SET_CURRENT(t0);
-	engine_check(aff_item_knn(m, &p, a, &nb, poll_interrupts, NULL, &err), &err);
+	engine_check(aff_item_knn(m, &p, a, &nb, engine_poll, NULL, &err), &err);
 	if (o->verbose)
 		ereport(NOTICE,
 				(errmsg("affinity.fit item_knn: " INT64_FORMAT " neighbours of " INT64_FORMAT " items, %.3f s",
