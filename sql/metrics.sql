@@ -77,3 +77,20 @@ RESET parallel_setup_cost;
 RESET parallel_tuple_cost;
 RESET min_parallel_table_scan_size;
 RESET parallel_leader_participation;
+
+-- Tuning by SQL: one model per grid point (CROSS JOIN a grid, GROUP BY its
+-- columns), each scored on the same held-out rows
+CREATE TABLE met_grid AS
+SELECT g.factors, g.regularization,
+       affinity.fit(b.user_id, b.item_id, b.weight,
+                    jsonb_build_object('factors', g.factors, 'regularization', g.regularization,
+                                       'iterations', 3, 'threads', 1)) AS model
+FROM met_buys b
+CROSS JOIN (VALUES (4, 1.0), (4, 30.0), (8, 30.0)) g(factors, regularization)
+GROUP BY g.factors, g.regularization;
+SELECT factors, regularization,
+       (affinity.describe(model)->'options'->>'factors')::int = factors AS factors_used,
+       (affinity.describe(model)->'options'->>'regularization')::float8 = regularization AS regularization_used
+FROM met_grid ORDER BY 1, 2;
+SELECT g.factors, g.regularization, (affinity.ranking_metrics(g.model, h.user_id, h.item_id, 10))->'users' AS users
+FROM met_grid g, met_held h GROUP BY g.factors, g.regularization ORDER BY 1, 2;
