@@ -14,6 +14,7 @@ typedef struct AffTriple
 	int64_t		user;
 	int64_t		item;
 	float		weight;
+	int32_t		pad;			/* always 0: rows are copied as bytes */
 } AffTriple;
 
 typedef struct AffMatrix

@@ -45,9 +45,19 @@ typedef struct FitState
 
 /* Grow the row array geometrically; guard the byte count first. */
 static void
+reserve_rows(FitState *st, int64 need);
+
+static void
 grow_rows(FitState *st)
 {
-	int64		cap = st->cap_rows == 0 ? 1024 : st->cap_rows * 2;
+	reserve_rows(st, st->cap_rows == 0 ? 1024 : st->cap_rows * 2);
+}
+
+/* Make room for `need` rows in one step (at least doubling). */
+static void
+reserve_rows(FitState *st, int64 need)
+{
+	int64		cap = Max(need, st->cap_rows * 2);
 	Size		bytes;
 
 	if (cap > (int64) (MaxAllocHugeSize / sizeof(AffTriple)))
@@ -88,6 +98,7 @@ add_row(FitState *st, int64 user, int64 item, float4 w)
 	st->rows[st->n_rows].user = user;
 	st->rows[st->n_rows].item = item;
 	st->rows[st->n_rows].weight = w;
+	st->rows[st->n_rows].pad = 0;
 	st->n_rows++;
 }
 
@@ -190,8 +201,8 @@ affinity_fit_text_transfn(PG_FUNCTION_ARGS)
 static void
 append_rows(FitState *st, const AffTriple *rows, int64 n)
 {
-	while (st->cap_rows - st->n_rows < n)
-		grow_rows(st);
+	if (st->cap_rows - st->n_rows < n)
+		reserve_rows(st, st->n_rows + n);
 	if (n > 0)
 		memcpy(st->rows + st->n_rows, rows, sizeof(AffTriple) * n);
 	st->n_rows += n;
@@ -260,8 +271,8 @@ affinity_fit_serialfn(PG_FUNCTION_ARGS)
 {
 	FitState   *st = (FitState *) PG_GETARG_POINTER(0);
 	StringInfoData buf;
-	double		bytes = (double) st->n_rows * (2 * sizeof(int64) + sizeof(float4)) + 1024;
-	int64		i;
+	double		bytes = (double) st->n_rows * sizeof(AffTriple) + 1024 +
+		(st->text_keys ? (double) (st->user_texts->bytes + st->item_texts->bytes) * 2 : 0);
 
 	if (bytes > (double) (MaxAllocSize - VARHDRSZ))
 		ereport(ERROR,
@@ -271,18 +282,15 @@ affinity_fit_serialfn(PG_FUNCTION_ARGS)
 						   st->n_rows),
 				 errhint("Run the fit without parallel workers: SET max_parallel_workers_per_gather = 0.")));
 	pq_begintypsend(&buf);
+	enlargeStringInfo(&buf, (int) bytes);	/* one allocation, not doublings */
 	pq_sendint8(&buf, st->have_options ? 1 : 0);
 	pq_sendbytes(&buf, (const char *) &st->opts, sizeof(FitOptions));
 	pq_sendint64(&buf, st->rows_read);
 	pq_sendint64(&buf, st->rows_null);
 	pq_sendint64(&buf, st->rows_zero);
 	pq_sendint64(&buf, st->n_rows);
-	for (i = 0; i < st->n_rows; i++)
-	{
-		pq_sendint64(&buf, st->rows[i].user);
-		pq_sendint64(&buf, st->rows[i].item);
-		pq_sendfloat4(&buf, st->rows[i].weight);
-	}
+	/* rows as bytes: the state only travels between processes of one server */
+	pq_sendbytes(&buf, (const char *) st->rows, sizeof(AffTriple) * st->n_rows);
 	pq_sendint8(&buf, st->text_keys ? 1 : 0);
 	if (st->text_keys)
 	{
@@ -306,7 +314,6 @@ affinity_fit_deserialfn(PG_FUNCTION_ARGS)
 	FitState   *st;
 	StringInfoData buf;
 	int64		n;
-	int64		i;
 
 	if (!AggCheckCallContext(fcinfo, &aggcxt))
 		elog(ERROR, "affinity_fit_deserialfn called in non-aggregate context");
@@ -322,16 +329,12 @@ affinity_fit_deserialfn(PG_FUNCTION_ARGS)
 	st->rows_null = pq_getmsgint64(&buf);
 	st->rows_zero = pq_getmsgint64(&buf);
 	n = pq_getmsgint64(&buf);
-	if (n < 0 || n > (buf.len - buf.cursor) / 20)
+	if (n < 0 || n > (buf.len - buf.cursor) / (int64) sizeof(AffTriple))
 		elog(ERROR, "invalid serialized affinity.fit state");
-	while (st->cap_rows < n)
-		grow_rows(st);
-	for (i = 0; i < n; i++)
-	{
-		st->rows[i].user = pq_getmsgint64(&buf);
-		st->rows[i].item = pq_getmsgint64(&buf);
-		st->rows[i].weight = pq_getmsgfloat4(&buf);
-	}
+	if (n > 0)
+		reserve_rows(st, n);
+	if (n > 0)
+		memcpy(st->rows, pq_getmsgbytes(&buf, sizeof(AffTriple) * n), sizeof(AffTriple) * n);
 	st->n_rows = n;
 	st->text_keys = pq_getmsgbyte(&buf) != 0;
 	if (st->text_keys)
