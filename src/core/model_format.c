@@ -182,12 +182,13 @@ aff_model_write(const AffModelParts *parts, uint8_t *buf, uint64_t size)
 		n++;
 	}
 
-	/* the fingerprint leaves out wall-clock timings */
+	/* the fingerprint leaves out wall-clock timings and the measured peak memory */
 	{
 		AffModelHeader hc = h;
 
 		hc.varlena_word = 0;
 		hc.fit_seconds = 0;
+		hc.peak_memory = 0;		/* a measurement too: buffer sizes vary with the plan */
 		fp = aff_hash((const uint8_t *) &hc, sizeof(hc), fp);
 		fp = aff_hash((const uint8_t *) table, (uint64_t) n * sizeof(AffSection), fp);
 	}

@@ -50,7 +50,7 @@ typedef struct AffModelHeader
 	uint16_t	n_sections;
 	uint64_t	total_size;		/* bytes of the whole value */
 	uint64_t	checksum;		/* of every byte but the first 4 and this field */
-	uint64_t	fingerprint;	/* of the content without timings: determinism */
+	uint64_t	fingerprint;	/* of the content without timings and peak memory */
 	int64_t		n_users;
 	int64_t		n_items;
 	int64_t		nnz;

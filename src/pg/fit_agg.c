@@ -351,13 +351,16 @@ affinity_fit_deserialfn(PG_FUNCTION_ARGS)
  * affinity.max_fit_memory before anything large is allocated: the rows, the
  * matrix both ways with its dictionaries and confidences, the factors, and
  * the model built twice (the executor copies it once).  Before the matrix
- * exists, users and items are bounded by the row count; afterwards the
- * exact counts are used.
+ * exists, users and items are bounded by the row count and only the build
+ * is counted (with_factors false: the build allocates O(rows)); afterwards
+ * the exact counts and the factors are.
  */
 static double
-estimate_fit_bytes(const FitState *st, double n_rows, double users, double items)
+estimate_fit_bytes(const FitState *st, double n_rows, double users, double items,
+				   bool with_factors)
 {
-	double		f = st->opts.method == AFF_METHOD_IMPLICIT_ALS ? st->opts.factors : 0;
+	double		f = (with_factors && st->opts.method == AFF_METHOD_IMPLICIT_ALS) ?
+		st->opts.factors : 0;
 	double		entities = users + items;
 
 	return n_rows * sizeof(AffTriple) * 2.0	/* rows and radix-sort scratch */
@@ -368,9 +371,10 @@ estimate_fit_bytes(const FitState *st, double n_rows, double users, double items
 }
 
 static void
-check_memory(const FitState *st, double n_rows, double users, double items)
+check_memory(const FitState *st, double n_rows, double users, double items,
+			 bool with_factors)
 {
-	double		need = estimate_fit_bytes(st, n_rows, users, items);
+	double		need = estimate_fit_bytes(st, n_rows, users, items, with_factors);
 	double		limit = (double) affinity_max_fit_memory_mb * 1024.0 * 1024.0;
 
 	if (need > limit)
@@ -554,11 +558,11 @@ fit_model(FitState *st)
 	show_phase("affinity.fit building the interaction matrix");
 	/* users and items are at most the rows until the matrix says */
 	check_memory(st, st->n_rows, Min(st->n_rows, AFF_MAX_ENTITIES),
-				 Min(st->n_rows, AFF_MAX_ENTITIES));
+				 Min(st->n_rows, AFF_MAX_ENTITIES), false);
 	if (aff_matrix_build(st->rows, st->n_rows, st->opts.min_user_interactions,
 						 st->opts.min_item_interactions, &a, &m, &err) != AFF_OK)
 		report_engine_error(&err);
-	check_memory(st, m.nnz, m.n_users, m.n_items);
+	check_memory(st, m.nnz, m.n_users, m.n_items, true);
 	/* the rows are not needed any more */
 	peak = (double) st->cap_rows * sizeof(AffTriple) + MemoryContextMemAllocated(work, true);
 	pfree(st->rows);
