@@ -61,6 +61,13 @@ select_row(const BatchJob *job, int32 u, const float *row, AffScored *heap,
 			seen++;
 			continue;
 		}
+
+		/*
+		 * Once the heap is full, a score not above its worst cannot enter
+		 * (indices rise, so an equal score loses the tie): skip the call.
+		 */
+		if (t.n == t.k && !(row[i] > t.heap[0].score))
+			continue;
 		aff_topk_push(&t, row[i], i);
 	}
 	*kept = aff_topk_finish(&t);

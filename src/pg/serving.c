@@ -65,8 +65,9 @@ emit_best(FunctionCallInfo fcinfo, const AffModelView *v, const float *scores,
 	aff_topk_init(&t, palloc(sizeof(AffScored) * k), k);
 	if (cand == NULL)
 	{
+		/* a full heap's worst bounds what can enter (indices rise: ties lose) */
 		for (i = 0; i < v->h->n_items; i++)
-			if (!skip[i])
+			if (!skip[i] && (t.n < t.k || scores[i] > t.heap[0].score))
 				aff_topk_push(&t, scores[i], (int32) i);
 	}
 	else
