@@ -161,7 +161,7 @@ class Model:
         h = dict(self.h)
         h.update(magic=b"AFMD", n_sections=len(present), total_size=off, checksum=0, fingerprint=0)
         tbytes = b"".join(struct.pack(SECTION_FMT, *t) for t in table)
-        hc = dict(h, varlena_word=0, fit_seconds=0.0)
+        hc = dict(h, varlena_word=0, fit_seconds=0.0, peak_memory=0)
         fp = aff_hash(pack_header(hc), fp)
         fp = aff_hash(tbytes, fp)
         h["fingerprint"] = fp
