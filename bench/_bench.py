@@ -12,13 +12,14 @@ import signal
 import statistics
 import subprocess
 import sys
+import tempfile
 import time
 
 import psycopg2
 
 BENCH_DIR = os.path.dirname(os.path.abspath(__file__))
 REPO_DIR = os.path.dirname(BENCH_DIR)
-WORK = os.environ.get("AFF_BENCH_WORK") or "/tmp"
+WORK = os.environ.get("AFF_BENCH_WORK") or tempfile.gettempdir()
 LIBRARY = None       # what pin_library found, set by the drivers
 
 

@@ -22,9 +22,11 @@ Input: the table exported with COPY ... TO ... (FORMAT binary), columns user_id 
 item_id bigint, weight real, no NULLs. Duplicate (user, item) rows are summed, zero weights
 dropped, as affinity does.
 
-Usage: peer_als.py FILE [--factors 64] [--iterations 15] [--cg-steps 3] [--regularization 0.1]
+Usage: peer_als.py FILE [--factors 64] [--iterations 15] [--cg-steps 3] [--regularization 30]
                         [--alpha 10] [--epsilon 1] [--confidence log|linear] [--seed 42]
                         [--threads N] [--json OUT]
+bench/fit passes every option as affinity used it (describe()'s "options"), so the defaults here
+only matter when the peer is run by hand.
 Threads: BLAS (OpenBLAS through threadpoolctl) gets N threads; numpy's element-wise operations
 and scipy.sparse products run on one thread, as they do for anyone who uses them.
 Prints one line per sweep and, with --json, writes every figure to OUT.
@@ -43,7 +45,7 @@ def parse_args():
     ap.add_argument("--factors", type=int, default=64)
     ap.add_argument("--iterations", type=int, default=15)
     ap.add_argument("--cg-steps", type=int, default=3)
-    ap.add_argument("--regularization", type=float, default=0.1)
+    ap.add_argument("--regularization", type=float, default=30.0)
     ap.add_argument("--alpha", type=float, default=10.0)
     ap.add_argument("--epsilon", type=float, default=1.0)
     ap.add_argument("--confidence", choices=["log", "linear"], default="log")
