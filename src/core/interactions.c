@@ -144,89 +144,64 @@ triple_byte(const AffTriple *t, int pass)
 	return (unsigned) (k >> (8 * ((pass - 4) % 8))) & 0xff;
 }
 
-/*
- * LSD radix sort of rows by (user, item, weight), using tmp (n rows) as the
- * second buffer.  Passes whose byte is the same for every row are skipped,
- * so ids that fit in a few bytes cost a few passes.  Stable and O(n) per
- * pass; it replaces an O(n log n) comparison sort on the fit's hot path.
- */
-static void
-radix_sort_triples(AffTriple *rows, AffTriple *tmp, int64_t n)
+/* Byte `pass` of an int64 key, ordered as signed. */
+static inline unsigned
+int64_byte(const int64_t *k, int pass)
 {
-	AffTriple  *src = rows;
-	AffTriple  *dst = tmp;
-	int			pass;
-
-	for (pass = 0; pass < 20; pass++)
-	{
-		int64_t		count[256] = {0};
-		int64_t		i;
-		int64_t		at = 0;
-		int			b;
-
-		for (i = 0; i < n; i++)
-			count[triple_byte(&src[i], pass)]++;
-		if (count[triple_byte(&src[0], pass)] == n)
-			continue;
-		for (b = 0; b < 256; b++)
-		{
-			int64_t		c = count[b];
-
-			count[b] = at;
-			at += c;
-		}
-		for (i = 0; i < n; i++)
-			dst[count[triple_byte(&src[i], pass)]++] = src[i];
-		{
-			AffTriple  *t = src;
-
-			src = dst;
-			dst = t;
-		}
-	}
-	if (src != rows)
-		memcpy(rows, src, sizeof(AffTriple) * (size_t) n);
+	return (unsigned) ((((uint64_t) *k) ^ 0x8000000000000000ULL) >> (8 * pass)) & 0xff;
 }
 
-/* LSD radix sort of int64 keys, tmp holding n more. */
+/*
+ * One LSD radix sort body for both element types: PASSES byte passes over
+ * n elements of TYPE, BYTE(element pointer, pass) giving the pass's byte,
+ * with tmp (n more elements) as the second buffer.  Passes whose byte is
+ * the same for every element are skipped, so ids that fit in a few bytes
+ * cost a few passes.  Stable and O(n) per pass.
+ */
+#define RADIX_SORT_BODY(TYPE, PASSES, BYTE) \
+	do { \
+		TYPE	   *src = data; \
+		TYPE	   *dst = tmp; \
+		int			pass; \
+		for (pass = 0; pass < (PASSES); pass++) \
+		{ \
+			int64_t		count[256] = {0}; \
+			int64_t		i; \
+			int64_t		at = 0; \
+			int			b; \
+			TYPE	   *t; \
+			for (i = 0; i < n; i++) \
+				count[BYTE(&src[i], pass)]++; \
+			if (count[BYTE(&src[0], pass)] == n) \
+				continue; \
+			for (b = 0; b < 256; b++) \
+			{ \
+				int64_t		c = count[b]; \
+				count[b] = at; \
+				at += c; \
+			} \
+			for (i = 0; i < n; i++) \
+				dst[count[BYTE(&src[i], pass)]++] = src[i]; \
+			t = src; \
+			src = dst; \
+			dst = t; \
+		} \
+		if (src != data) \
+			memcpy(data, src, sizeof(TYPE) * (size_t) n); \
+	} while (0)
+
+/* Rows by (user, item, weight); it replaces a comparison sort on the fit's hot path. */
 static void
-radix_sort_int64(int64_t *keys, int64_t *tmp, int64_t n)
+radix_sort_triples(AffTriple *data, AffTriple *tmp, int64_t n)
 {
-	int64_t    *src = keys;
-	int64_t    *dst = tmp;
-	int			pass;
+	RADIX_SORT_BODY(AffTriple, 20, triple_byte);
+}
 
-	for (pass = 0; pass < 8; pass++)
-	{
-		int64_t		count[256] = {0};
-		int64_t		i;
-		int64_t		at = 0;
-		int			b;
-
-#define KEYBYTE(k) ((unsigned) ((((uint64_t) (k)) ^ 0x8000000000000000ULL) >> (8 * pass)) & 0xff)
-		for (i = 0; i < n; i++)
-			count[KEYBYTE(src[i])]++;
-		if (count[KEYBYTE(src[0])] == n)
-			continue;
-		for (b = 0; b < 256; b++)
-		{
-			int64_t		c = count[b];
-
-			count[b] = at;
-			at += c;
-		}
-		for (i = 0; i < n; i++)
-			dst[count[KEYBYTE(src[i])]++] = src[i];
-#undef KEYBYTE
-		{
-			int64_t    *t = src;
-
-			src = dst;
-			dst = t;
-		}
-	}
-	if (src != keys)
-		memcpy(keys, src, sizeof(int64_t) * (size_t) n);
+/* int64 keys, ascending. */
+static void
+radix_sort_int64(int64_t *data, int64_t *tmp, int64_t n)
+{
+	RADIX_SORT_BODY(int64_t, 8, int64_byte);
 }
 
 /*
