@@ -17,6 +17,13 @@
 #include "aff_core.h"
 
 #define AFF_FORMAT_VERSION	1
+
+/*
+ * The largest value the extension writes or accepts: its base64 text form
+ * (4/3 of the bytes) must stay under PostgreSQL's 1 GB string limit with room
+ * for the other columns of a dumped row, since pg_dump reads values as text.
+ */
+#define AFF_MAX_MODEL_BYTES	((uint64_t) 720 * 1024 * 1024)
 #define AFF_MAGIC			"AFMD"
 
 /* Section kinds. */
@@ -79,7 +86,12 @@ typedef struct AffModelHeader
 	int64_t		dropped_interactions;
 	int64_t		peak_memory;	/* bytes, 0 when not measured */
 	double		fit_seconds;	/* wall time of the final step (not in fingerprint) */
-	int64_t		reserved[6];
+	/*
+	 * Added after 1.1 in what was reserved (zero) space, so 1.1 values keep
+	 * their meaning: a zero field means "not set by the writer".
+	 */
+	uint8_t		content_digest[32];	/* SHA-256 identity of the content, 0 = unset */
+	uint64_t	text_hash_key[2];	/* per-model key of the text-key hash, 0 = 1.1 hash */
 } AffModelHeader;
 
 typedef struct AffSection
