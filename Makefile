@@ -25,8 +25,8 @@ OBJS = \
 	src/pg/weights.o
 
 EXTENSION = affinity
-EXTVERSION = 1.1
-DATA = src/affinity--1.0.sql src/affinity--1.0--1.1.sql
+EXTVERSION = 1.2
+DATA = src/affinity--1.0.sql src/affinity--1.0--1.1.sql src/affinity--1.1--1.2.sql
 PGFILEDESC = "affinity - recommendation models in SQL"
 
 REGRESS = type fit serving batch metrics methods registry text_keys corrupt privileges errors upgrade

@@ -135,3 +135,20 @@ RESET parallel_setup_cost;
 RESET parallel_tuple_cost;
 RESET min_parallel_table_scan_size;
 RESET parallel_leader_participation;
+
+-- fit is no window aggregate: its final function frees the rows it collected
+-- and keeps its result (FINALFUNC_MODIFY = READ_WRITE), so a running fit,
+-- which would need a model per row, is refused by PostgreSQL
+SELECT u, affinity.describe(affinity.fit(u, i, 1::real, '{"method": "popularity"}') OVER (ORDER BY u))->'users' AS users
+FROM (VALUES (1::bigint, 10::bigint), (2, 11), (3, 12)) v(u, i);
+SELECT u, affinity.describe(affinity.fit(u::text, i::text, 1::real) OVER (ORDER BY u))->'users' AS users
+FROM (VALUES (1::bigint, 10::bigint), (2, 11), (3, 12)) v(u, i);
+-- what each aggregate declares (ranking_metrics sorts its state: shareable)
+SELECT a.aggfnoid::regprocedure AS aggregate, a.aggfinalmodify
+FROM pg_aggregate a JOIN pg_proc p ON p.oid = a.aggfnoid
+WHERE p.pronamespace = 'affinity'::regnamespace
+ORDER BY a.aggfnoid::regprocedure::text;
+-- a grid keeps working: two fits of the same rows in one query get their own states
+SELECT affinity.describe(affinity.fit(u, i, 1::real, '{"method": "popularity"}'))->'users' AS a,
+       affinity.describe(affinity.fit(u, i, 1::real, '{"method": "popularity"}'))->'items' AS b
+FROM (VALUES (1::bigint, 10::bigint), (2, 11), (3, 12)) v(u, i);

@@ -94,3 +94,32 @@ SELECT factors, regularization,
 FROM met_grid ORDER BY 1, 2;
 SELECT g.factors, g.regularization, (affinity.ranking_metrics(g.model, h.user_id, h.item_id, 10))->'users' AS users
 FROM met_grid g, met_held h GROUP BY g.factors, g.regularization ORDER BY 1, 2;
+
+-- Rows that bring two models without a GROUP BY are refused: the result
+-- would describe the first model alone.  (The detail names the checksums,
+-- which change with the fit's timings, so the error is caught and its
+-- stable parts shown.)
+DO $$
+DECLARE
+	st text;
+	msg text;
+	hint text;
+BEGIN
+	PERFORM affinity.ranking_metrics(g.model, h.user_id, h.item_id, 10) FROM met_grid g, met_held h;
+	RAISE NOTICE 'no error: two models were evaluated as one';
+EXCEPTION WHEN OTHERS THEN
+	GET STACKED DIAGNOSTICS st = RETURNED_SQLSTATE, msg = MESSAGE_TEXT, hint = PG_EXCEPTION_HINT;
+	RAISE NOTICE '%: %; hint: %', st, msg, hint;
+END $$;
+-- the same model from two rows (two stored copies) is one model
+CREATE TABLE met_copies AS
+SELECT model FROM met_grid WHERE factors = 8
+UNION ALL SELECT model FROM met_grid WHERE factors = 8;
+SELECT (SELECT affinity.ranking_metrics(c.model, h.user_id, h.item_id, 10)
+        FROM met_copies c, met_held h)
+     = (SELECT affinity.ranking_metrics(g.model, h.user_id, h.item_id, 10)
+        FROM met_grid g, met_held h WHERE g.factors = 8) AS copies_agree;
+-- nor is ranking_metrics a window aggregate (its final function sorts its state)
+SELECT affinity.ranking_metrics(g.model, h.user_id, h.item_id) OVER (ORDER BY h.user_id) IS NOT NULL
+FROM met_grid g, met_held h WHERE g.factors = 8 LIMIT 1;
+DROP TABLE met_copies;

@@ -1,6 +1,8 @@
 --
 -- Upgrades: a model stored under version 1.0 serves unchanged after
--- ALTER EXTENSION affinity UPDATE.
+-- ALTER EXTENSION affinity UPDATE to 1.1 and then to 1.2; the 1.1 registry's
+-- owners (role names) become role oids, and a model whose owner role no
+-- longer exists cannot be refreshed.
 --
 SET client_min_messages = warning;
 DROP EXTENSION affinity CASCADE;
@@ -16,7 +18,7 @@ SELECT affinity.fit(user_id, item_id, weight, '{"factors": 4, "iterations": 3}')
 CREATE TABLE upg_before AS
 SELECT u AS user_id, t.* FROM upg_model, generate_series(1, 100) u, affinity.top_items(model, u, 5) t;
 CREATE TABLE upg_checksum AS SELECT affinity.describe(model)->>'checksum' AS c FROM upg_model;
-ALTER EXTENSION affinity UPDATE;
+ALTER EXTENSION affinity UPDATE TO '1.1';
 SELECT extversion FROM pg_extension WHERE extname = 'affinity';
 SELECT to_regclass('affinity.models') IS NOT NULL AS registry_in_1_1;
 SELECT affinity.describe(model)->>'checksum' = c AS same_value FROM upg_model, upg_checksum;
@@ -26,3 +28,43 @@ SELECT count(*) AS differences FROM (
 -- and the stored model can enter the registry's world
 SELECT affinity.define_model('upgraded', 'SELECT user_id, item_id, weight FROM upg_buys');
 SELECT (affinity.refresh('upgraded'))->'version';
+-- a 1.1 model of a role that is dropped before the update
+CREATE ROLE regress_upg_gone;
+GRANT SELECT, INSERT, UPDATE ON affinity.models TO regress_upg_gone;
+GRANT SELECT ON upg_buys TO regress_upg_gone;
+SET ROLE regress_upg_gone;
+SELECT affinity.define_model('orphaned', 'SELECT user_id, item_id, weight FROM public.upg_buys');
+RESET ROLE;
+REVOKE ALL ON affinity.models, upg_buys FROM regress_upg_gone;
+DROP ROLE regress_upg_gone;
+SELECT name, owner = current_user AS mine FROM affinity.models ORDER BY name;
+
+ALTER EXTENSION affinity UPDATE TO '1.2';
+SELECT extversion FROM pg_extension WHERE extname = 'affinity';
+SELECT affinity.describe(model)->>'checksum' = c AS same_value FROM upg_model, upg_checksum;
+-- owners are role oids now, with the name they had
+SELECT name, owner::oid = (SELECT oid FROM pg_roles WHERE rolname = current_user) AS owned_by_me,
+       owner::oid = 0 AS no_owner, owner_name = current_user AS my_name, pg_typeof(owner)
+FROM affinity.models ORDER BY name;
+SELECT owner_name FROM affinity.models WHERE name = 'orphaned';
+SELECT (affinity.refresh('upgraded'))->'version';
+SELECT version, (SELECT count(*) FROM affinity.model_history h WHERE h.name = m.name) AS kept
+FROM affinity.models m WHERE name = 'upgraded';
+\set SHOW_CONTEXT never
+SELECT affinity.refresh('orphaned');
+\set SHOW_CONTEXT errors
+-- the aggregates were made again: members of the extension, with comments
+-- and with what their final functions do
+SELECT a.aggfnoid::regprocedure AS aggregate, a.aggfinalmodify,
+       obj_description(a.aggfnoid, 'pg_proc') IS NOT NULL AS commented,
+       EXISTS (SELECT FROM pg_depend d JOIN pg_extension e ON e.oid = d.refobjid
+               WHERE d.classid = 'pg_proc'::regclass AND d.objid = a.aggfnoid
+                 AND d.deptype = 'e' AND e.extname = 'affinity') AS member
+FROM pg_aggregate a JOIN pg_proc p ON p.oid = a.aggfnoid
+WHERE p.pronamespace = 'affinity'::regnamespace
+ORDER BY a.aggfnoid::regprocedure::text;
+-- and the model stored under 1.0 still serves the same
+SELECT count(*) AS differences FROM (
+  SELECT u AS user_id, t.* FROM upg_model, generate_series(1, 100) u, affinity.top_items(model, u, 5) t
+  EXCEPT SELECT * FROM upg_before) d;
+DELETE FROM affinity.models WHERE name = 'orphaned';

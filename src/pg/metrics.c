@@ -18,11 +18,18 @@
  * The state keeps the model argument as it came (a TOAST pointer is a few
  * bytes) and the pairs in a growing array; combine appends, serialize
  * writes both, so PostgreSQL can feed the aggregate from a parallel scan.
+ * Every row must bring the same model: rows of two models without a GROUP
+ * BY are refused, since the result would silently describe the first one.
+ * A model is identified by its header (size, checksum, content digest),
+ * read from the value inline or from the first TOAST chunk; a row that
+ * brings the same TOAST pointer as the last accepted one is not read again.
+ * The final function sorts the pairs (FINALFUNC_MODIFY = SHAREABLE).
  */
 #include "serving_common.h"
 
 #include <math.h>
 
+#include "access/detoast.h"
 #include "libpq/pqformat.h"
 #include "miscadmin.h"
 #include "utils/float.h"
@@ -34,10 +41,21 @@ typedef struct HeldOut
 	int64		item;
 } HeldOut;
 
+/* What tells two model values apart without reading them whole. */
+typedef struct ModelIdentity
+{
+	uint64		total_size;
+	uint64		checksum;
+	uint8		digest[32];
+} ModelIdentity;
+
 typedef struct MetricsState
 {
 	MemoryContext cxt;
 	struct varlena *model;		/* raw argument, copied once */
+	ModelIdentity id;			/* of model */
+	bool		have_ptr;		/* last_ptr holds an accepted TOAST pointer */
+	struct varatt_external last_ptr;
 	int32		k;
 	HeldOut    *pairs;
 	int64		n;
@@ -75,7 +93,75 @@ state_add(MetricsState *st, int64 user, int64 item)
 	st->n++;
 }
 
-/* Keep the first model and k; every row must bring the same k. */
+/*
+ * The identity of a raw model argument: its header's size, checksum and
+ * digest.  An on-disk value is read only as far as its header; a value too
+ * short for a header gets an identity of its size alone (the final function
+ * refuses it anyway).
+ */
+static void
+model_identity(struct varlena *raw, ModelIdentity *id)
+{
+	AffModelHeader h;
+	struct varlena *v = raw;
+
+	memset(id, 0, sizeof(*id));
+	if (VARATT_IS_EXTERNAL(raw) || VARATT_IS_COMPRESSED(raw) || VARATT_IS_SHORT(raw))
+		v = detoast_attr_slice(raw, 0, sizeof(AffModelHeader));
+	if (VARSIZE(v) < sizeof(AffModelHeader))
+		id->total_size = VARSIZE(v);
+	else
+	{
+		memcpy(&h, v, sizeof(h));
+		id->total_size = h.total_size;
+		id->checksum = h.checksum;
+		memcpy(id->digest, h.content_digest, sizeof(id->digest));
+	}
+	if (v != raw)
+		pfree(v);
+}
+
+/* Remember an accepted TOAST pointer, so that the next row with it is not read. */
+static void
+remember_pointer(MetricsState *st, struct varlena *raw)
+{
+	st->have_ptr = VARATT_IS_EXTERNAL_ONDISK(raw);
+	if (st->have_ptr)
+		VARATT_EXTERNAL_GET_POINTER(st->last_ptr, raw);
+}
+
+/* Refuse a row whose model is not the one the aggregate started with. */
+static void
+check_same_model(MetricsState *st, struct varlena *raw)
+{
+	ModelIdentity id;
+
+	if (st->have_ptr && VARATT_IS_EXTERNAL_ONDISK(raw))
+	{
+		struct varatt_external ptr;
+
+		VARATT_EXTERNAL_GET_POINTER(ptr, raw);
+		if (ptr.va_toastrelid == st->last_ptr.va_toastrelid &&
+			ptr.va_valueid == st->last_ptr.va_valueid &&
+			ptr.va_rawsize == st->last_ptr.va_rawsize)
+			return;
+	}
+	model_identity(raw, &id);
+	if (id.total_size != st->id.total_size || id.checksum != st->id.checksum ||
+		memcmp(id.digest, st->id.digest, sizeof(id.digest)) != 0)
+		ereport(ERROR,
+				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
+				 errmsg("the model must be the same on every row of affinity.ranking_metrics"),
+				 errdetail("The rows bring a model of %llu bytes with checksum %016llx, then one of %llu bytes with checksum %016llx.",
+						   (unsigned long long) st->id.total_size,
+						   (unsigned long long) st->id.checksum,
+						   (unsigned long long) id.total_size,
+						   (unsigned long long) id.checksum),
+				 errhint("To evaluate several models in one query, GROUP BY the model (or its name): one result per model.")));
+	remember_pointer(st, raw);
+}
+
+/* Keep the first model and k; every row must bring the same model and k. */
 static void
 state_set_model(MetricsState *st, struct varlena *raw, int32 k)
 {
@@ -90,13 +176,17 @@ state_set_model(MetricsState *st, struct varlena *raw, int32 k)
 					 errdetail("k is %d.", k)));
 		st->model = MemoryContextAllocHuge(st->cxt, len);
 		memcpy(st->model, raw, len);
+		model_identity(st->model, &st->id);
+		remember_pointer(st, st->model);
 		st->k = k;
+		return;
 	}
-	else if (st->k != k)
+	if (st->k != k)
 		ereport(ERROR,
 				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
 				 errmsg("k must be the same on every row of affinity.ranking_metrics"),
 				 errdetail("k changed from %d to %d.", st->k, k)));
+	check_same_model(st, raw);
 }
 
 PG_FUNCTION_INFO_V1(ranking_metrics_transfn);
@@ -195,6 +285,8 @@ ranking_metrics_deserialfn(PG_FUNCTION_ARGS)
 	{
 		st->model = MemoryContextAllocHuge(aggcxt, len);
 		memcpy(st->model, pq_getmsgbytes(&buf, len), len);
+		model_identity(st->model, &st->id);
+		remember_pointer(st, st->model);
 	}
 	n = pq_getmsgint64(&buf);
 	for (i = 0; i < n; i++)

@@ -1,0 +1,484 @@
+/* src/affinity--1.1--1.2.sql */
+
+-- complain if script is sourced in psql, rather than via ALTER EXTENSION
+\echo Use "ALTER EXTENSION affinity UPDATE TO '1.2'" to load this file. \quit
+
+-- 1.2, in sections:
+--   The registry as a security boundary: a model's owner is a role oid
+--     (with the name it had), a model's query is checked and run only in a
+--     session logged in as its owner, and only the owner changes a model.
+--   Aggregates that say what their final functions do (FINALFUNC_MODIFY).
+-- Each section stands alone; later changes of 1.2 go in sections of their
+-- own at the end.
+
+-- The registry: owner as a role oid ----------------------------------------
+
+-- The 1.1 trigger would rewrite the owner while the column changes type.
+DROP TRIGGER models_set_owner ON affinity.models;
+DROP FUNCTION affinity.models_set_owner();
+
+-- The owner is kept as a role oid (regrole: shown and dumped by name) and
+-- beside it the name the role had when it wrote the query.  A role that was
+-- dropped before this update leaves oid 0 ("-"), and its model cannot be
+-- refreshed until a superuser hands it to a role or deletes it.
+ALTER TABLE affinity.models ALTER COLUMN owner DROP DEFAULT;
+ALTER TABLE affinity.models ADD COLUMN owner_name name;
+UPDATE affinity.models SET owner_name = owner;
+ALTER TABLE affinity.models ALTER COLUMN owner TYPE regrole
+	USING COALESCE(pg_catalog.to_regrole(pg_catalog.quote_ident(owner)), '-'::regrole);
+ALTER TABLE affinity.models ALTER COLUMN owner_name SET NOT NULL;
+COMMENT ON COLUMN affinity.models.owner IS 'the role that wrote the query: it is checked and run only in sessions logged in as this role';
+COMMENT ON COLUMN affinity.models.owner_name IS 'the owner''s name when it wrote the query: a refresh is refused when the role is gone or its name differs';
+
+-- Who the calling session is: the role it logged in as (the one that
+-- authenticated, which SET SESSION AUTHORIZATION does not change; only a
+-- superuser's login can switch session users), its session user and its
+-- current user.  Resolved by oid; a missing role gives NULL.
+CREATE FUNCTION affinity.registry_session(OUT login_role oid, OUT session_role oid,
+		OUT acting_role oid, OUT acting_is_superuser boolean)
+	LANGUAGE plpgsql STABLE
+	SET search_path = pg_catalog, pg_temp
+AS $$
+BEGIN
+	SELECT a.usesysid INTO login_role
+		FROM pg_catalog.pg_stat_get_activity(pg_catalog.pg_backend_pid()) a;
+	SELECT r.oid INTO session_role FROM pg_catalog.pg_roles r WHERE r.rolname = session_user;
+	SELECT r.oid, r.rolsuper INTO acting_role, acting_is_superuser
+		FROM pg_catalog.pg_roles r WHERE r.rolname = current_user;
+END
+$$;
+COMMENT ON FUNCTION affinity.registry_session() IS 'the calling session''s login role, session user and current user, as oids (for the registry''s owner checks)';
+
+-- Refuse unless the calling session is the model's owner and nobody else:
+-- logged in as the owner, with the owner as session user and current user
+-- (so neither SET ROLE, SET SESSION AUTHORIZATION, a SECURITY DEFINER
+-- function nor membership in the owner passes), and the owner's oid still
+-- carries the name it had when it wrote the query (so a dropped and
+-- recreated role, or an oid restored into another cluster, inherits
+-- nothing).  Superusers are not exempt: code in the query could otherwise
+-- switch back to their rights.  action names the call in the message.
+CREATE FUNCTION affinity.require_model_owner(model_name text, model_owner regrole,
+		model_owner_name name, action text)
+	RETURNS void
+	LANGUAGE plpgsql STABLE
+	SET search_path = pg_catalog, pg_temp
+AS $$
+DECLARE
+	s record;
+	owner_now name;
+	login_name name;
+	caller text;
+BEGIN
+	SELECT r.rolname INTO owner_now FROM pg_catalog.pg_roles r WHERE r.oid = model_owner::oid;
+	IF owner_now IS NULL OR owner_now OPERATOR(pg_catalog.<>) model_owner_name THEN
+		RAISE EXCEPTION '% of model "%" is refused: the role that wrote its query, %, %',
+			action, model_name, model_owner_name,
+			CASE WHEN owner_now IS NULL THEN 'no longer exists' ELSE 'is now named ' || owner_now END
+			USING ERRCODE = 'insufficient_privilege',
+				  DETAIL = CASE WHEN owner_now IS NULL
+						   THEN pg_catalog.format('The query was written by role %s, which has been dropped; a role created later, even of the same name, does not inherit it.',
+												  model_owner_name)
+						   ELSE pg_catalog.format('The query was written by role %s; the role with that oid is now named %s, and a query runs only for the role that wrote it.',
+												  model_owner_name, owner_now) END,
+				  HINT = 'A superuser can hand the model to a role after reading its query (UPDATE affinity.models SET owner = ''role'' WHERE name = ...), or delete it.';
+	END IF;
+	s := affinity.registry_session();
+	IF s.login_role IS DISTINCT FROM model_owner::oid
+	   OR s.session_role IS DISTINCT FROM model_owner::oid
+	   OR s.acting_role IS DISTINCT FROM model_owner::oid THEN
+		SELECT r.rolname INTO login_name FROM pg_catalog.pg_roles r WHERE r.oid = s.login_role;
+		caller := CASE WHEN login_name = session_user AND session_user = current_user
+					   THEN pg_catalog.format('role %s', current_user)
+					   ELSE pg_catalog.format('role %s (session user %s, logged in as %s)',
+											  current_user, session_user, coalesce(login_name, 'an unknown role')) END;
+		RAISE EXCEPTION '% of model "%" must run in a session of its owner, %', action, model_name, owner_now
+			USING ERRCODE = 'insufficient_privilege',
+				  DETAIL = pg_catalog.format('Model "%s" is owned by role %s; the caller is %s.',
+											 model_name, owner_now, caller),
+				  HINT = CASE WHEN action = 'refresh'
+						 THEN pg_catalog.format('Connect as %1$s, or schedule the refresh as %1$s: cron.schedule run by %1$s, or, by a superuser, cron.schedule_in_database(''refresh-%2$s'', ''30 2 * * *'', %3$L, current_database(), username => %4$L).',
+												owner_now, model_name,
+												pg_catalog.format('SELECT affinity.refresh(%L)', model_name), owner_now)
+						 ELSE pg_catalog.format('Connect as %s: a model''s query is checked and run only in sessions logged in as its owner.', owner_now) END;
+	END IF;
+END
+$$;
+COMMENT ON FUNCTION affinity.require_model_owner(text, regrole, name, text) IS 'raise insufficient_privilege unless the session is logged in as the model''s owner and runs as it';
+
+-- Only the owner writes a model's row: its query, options, search path,
+-- history size, owner, and the model and version that refresh and revert
+-- write.  Owner means the oid and the name both match the current user.
+-- A superuser may write any row, as PostgreSQL always allows, but a
+-- superuser who writes a query or its search path becomes its owner, so no
+-- other role's query ever runs in a superuser's session; a superuser may also
+-- hand a model to a role (owner, owner_name) or insert rows with their owner
+-- (pg_restore does).  Anyone else who inserts a row owns it.
+CREATE FUNCTION affinity.models_guard()
+	RETURNS trigger
+	LANGUAGE plpgsql
+	SET search_path = pg_catalog, pg_temp
+AS $$
+DECLARE
+	s record;
+	owner_now name;
+BEGIN
+	s := affinity.registry_session();
+	IF TG_OP = 'INSERT' THEN
+		IF NOT (coalesce(s.acting_is_superuser, false) AND NEW.owner IS NOT NULL) THEN
+			NEW.owner := s.acting_role::regrole;
+			NEW.owner_name := current_user;
+		ELSIF NEW.owner_name IS NULL THEN
+			SELECT r.rolname INTO NEW.owner_name FROM pg_catalog.pg_roles r WHERE r.oid = NEW.owner::oid;
+		END IF;
+		RETURN NEW;
+	END IF;
+	IF NOT coalesce(s.acting_is_superuser, false)
+	   AND NOT (OLD.owner::oid IS NOT DISTINCT FROM s.acting_role AND OLD.owner_name = current_user) THEN
+		SELECT r.rolname INTO owner_now FROM pg_catalog.pg_roles r WHERE r.oid = OLD.owner::oid;
+		RAISE EXCEPTION 'only the owner of model "%" may %', OLD.name,
+			CASE TG_OP WHEN 'DELETE' THEN 'delete it' ELSE 'change it' END
+			USING ERRCODE = 'insufficient_privilege',
+				  DETAIL = pg_catalog.format('Model "%s" is owned by %s; the caller is role %s.',
+											 OLD.name,
+											 CASE WHEN owner_now IS NOT DISTINCT FROM OLD.owner_name
+												  THEN 'role ' || OLD.owner_name
+												  ELSE pg_catalog.format('role %s, which has since been dropped or renamed (only a superuser may change the model now)',
+																		 OLD.owner_name) END,
+											 current_user),
+				  HINT = 'Its owner (logged in as itself) or a superuser may change it; define a model of your own under another name.';
+	END IF;
+	IF TG_OP = 'DELETE' THEN
+		RETURN OLD;
+	END IF;
+	IF NEW.source_query IS DISTINCT FROM OLD.source_query
+	   OR NEW.search_path IS DISTINCT FROM OLD.search_path
+	   OR NOT coalesce(s.acting_is_superuser, false) THEN
+		NEW.owner := s.acting_role::regrole;
+		NEW.owner_name := current_user;
+	ELSIF NEW.owner IS DISTINCT FROM OLD.owner AND NEW.owner_name IS NOT DISTINCT FROM OLD.owner_name THEN
+		-- a superuser hands the model to another role: the name follows
+		SELECT r.rolname INTO NEW.owner_name FROM pg_catalog.pg_roles r WHERE r.oid = NEW.owner::oid;
+	END IF;
+	RETURN NEW;
+END
+$$;
+CREATE TRIGGER models_guard BEFORE INSERT OR UPDATE OR DELETE ON affinity.models
+	FOR EACH ROW EXECUTE FUNCTION affinity.models_guard();
+
+-- The history belongs to the model's owner too: revert_model makes a kept
+-- version current, so a row planted there is a model served later.  The
+-- cascades of the foreign key run as the table's owner (a superuser).
+CREATE FUNCTION affinity.model_history_guard()
+	RETURNS trigger
+	LANGUAGE plpgsql
+	SET search_path = pg_catalog, pg_temp
+AS $$
+DECLARE
+	s record;
+	names text[];
+	n text;
+	m record;
+BEGIN
+	s := affinity.registry_session();
+	IF NOT coalesce(s.acting_is_superuser, false) THEN
+		IF TG_OP = 'INSERT' THEN
+			names := ARRAY[NEW.name];
+		ELSIF TG_OP = 'DELETE' THEN
+			names := ARRAY[OLD.name];
+		ELSE
+			names := ARRAY[OLD.name, NEW.name];
+		END IF;
+		FOREACH n IN ARRAY names
+		LOOP
+			SELECT x.owner, x.owner_name INTO m FROM affinity.models x WHERE x.name = n;
+			IF NOT FOUND OR NOT (m.owner::oid IS NOT DISTINCT FROM s.acting_role
+								 AND m.owner_name = current_user) THEN
+				RAISE EXCEPTION 'only the owner of model "%" may change its history', n
+					USING ERRCODE = 'insufficient_privilege',
+						  DETAIL = pg_catalog.format('Model "%s" is owned by %s; the caller is role %s.',
+													 n, coalesce('role ' || m.owner_name, 'no role (there is no such model)'),
+													 current_user);
+			END IF;
+		END LOOP;
+	END IF;
+	RETURN CASE TG_OP WHEN 'DELETE' THEN OLD ELSE NEW END;
+END
+$$;
+CREATE TRIGGER model_history_guard BEFORE INSERT OR UPDATE OR DELETE ON affinity.model_history
+	FOR EACH ROW EXECUTE FUNCTION affinity.model_history_guard();
+
+-- TRUNCATE skips row triggers: only a superuser may empty the registry.
+CREATE FUNCTION affinity.registry_truncate_guard()
+	RETURNS trigger
+	LANGUAGE plpgsql
+	SET search_path = pg_catalog, pg_temp
+AS $$
+BEGIN
+	IF NOT coalesce((affinity.registry_session()).acting_is_superuser, false) THEN
+		RAISE EXCEPTION 'only a superuser may truncate %', TG_TABLE_SCHEMA || '.' || TG_TABLE_NAME
+			USING ERRCODE = 'insufficient_privilege',
+				  HINT = 'Owners delete their own models with DELETE FROM affinity.models WHERE name = ...';
+	END IF;
+	RETURN NULL;
+END
+$$;
+CREATE TRIGGER models_truncate_guard BEFORE TRUNCATE ON affinity.models
+	FOR EACH STATEMENT EXECUTE FUNCTION affinity.registry_truncate_guard();
+CREATE TRIGGER model_history_truncate_guard BEFORE TRUNCATE ON affinity.model_history
+	FOR EACH STATEMENT EXECUTE FUNCTION affinity.registry_truncate_guard();
+
+-- define_model: the caller must be logged in as itself (the query is
+-- checked here, so it runs only in its future owner's session), and may
+-- redefine only a model it owns.
+CREATE OR REPLACE FUNCTION affinity.define_model(name text, source_query text, options jsonb DEFAULT '{}',
+		query_search_path text DEFAULT pg_catalog.current_setting('search_path'))
+	RETURNS void
+	LANGUAGE plpgsql VOLATILE
+	SET search_path = pg_catalog, pg_temp
+AS $$
+DECLARE
+	s record;
+	r affinity.models;
+BEGIN
+	IF name IS NULL OR source_query IS NULL OR options IS NULL OR query_search_path IS NULL THEN
+		RAISE EXCEPTION 'name, source_query and options must not be NULL'
+			USING ERRCODE = 'null_value_not_allowed';
+	END IF;
+	IF pg_catalog.jsonb_typeof(options) OPERATOR(pg_catalog.<>) 'object' THEN
+		RAISE EXCEPTION 'options must be a jsonb object'
+			USING ERRCODE = 'invalid_parameter_value',
+				  DETAIL = pg_catalog.format('The options given are %s.', options);
+	END IF;
+	SELECT * INTO r FROM affinity.models m WHERE m.name = define_model.name;
+	IF FOUND THEN
+		PERFORM affinity.require_model_owner(r.name, r.owner, r.owner_name, 'redefinition');
+	ELSE
+		s := affinity.registry_session();
+		IF s.login_role IS DISTINCT FROM s.acting_role OR s.session_role IS DISTINCT FROM s.acting_role THEN
+			RAISE EXCEPTION 'define_model must run in a session logged in as the role that will own model "%"', name
+				USING ERRCODE = 'insufficient_privilege',
+					  DETAIL = pg_catalog.format('The current user is %s, the session user %s, the login role %s.',
+												 current_user, session_user,
+												 coalesce((SELECT x.rolname FROM pg_catalog.pg_roles x WHERE x.oid = s.login_role),
+														  'unknown')),
+					  HINT = pg_catalog.format('Connect as %s: a model''s query is checked and run only in sessions logged in as its owner.', current_user);
+		END IF;
+	END IF;
+	-- the query must yield user_id, item_id and weight
+	PERFORM pg_catalog.set_config('search_path', query_search_path, true);
+	BEGIN
+		EXECUTE pg_catalog.format('SELECT user_id::bigint, item_id::bigint, weight::real FROM (%s) AS q LIMIT 0',
+								  source_query);
+	EXCEPTION WHEN OTHERS THEN
+		RAISE EXCEPTION 'the source query of model "%" cannot feed a fit', name
+			USING ERRCODE = 'invalid_parameter_value',
+				  DETAIL = SQLERRM,
+				  HINT = 'The query must yield columns user_id, item_id and weight (castable to bigint, bigint, real).';
+	END;
+	PERFORM pg_catalog.set_config('search_path', 'pg_catalog, pg_temp', true);
+	INSERT INTO affinity.models AS m (name, source_query, options, search_path)
+	VALUES (define_model.name, define_model.source_query, define_model.options,
+			define_model.query_search_path)
+	ON CONFLICT ON CONSTRAINT models_pkey DO UPDATE
+		SET source_query = EXCLUDED.source_query, options = EXCLUDED.options,
+			search_path = EXCLUDED.search_path;
+END
+$$;
+
+-- refresh: the query runs only in a session logged in as the model's owner,
+-- with no role switch at all; a query that switches role is refused.
+CREATE OR REPLACE FUNCTION affinity.refresh(name text)
+	RETURNS jsonb
+	LANGUAGE plpgsql VOLATILE
+	SET search_path = pg_catalog, pg_temp
+AS $$
+DECLARE
+	r affinity.models;
+	s record;
+	fitted affinity.model;
+	started timestamptz := clock_timestamp();
+	d jsonb;
+	result jsonb;
+	new_version integer;
+	msg text;
+	detail text;
+BEGIN
+	-- the owner check comes before the row lock, which needs UPDATE rights
+	SELECT * INTO r FROM affinity.models m WHERE m.name = refresh.name;
+	IF NOT FOUND THEN
+		RAISE EXCEPTION 'no model named "%"', name
+			USING ERRCODE = 'undefined_object',
+				  HINT = 'Register it first with affinity.define_model(name, source_query, options).';
+	END IF;
+	PERFORM affinity.require_model_owner(r.name, r.owner, r.owner_name, 'refresh');
+	-- one refresh of a name at a time: a second one waits for the first;
+	-- the row may have changed meanwhile, so it is checked again
+	SELECT * INTO r FROM affinity.models m WHERE m.name = refresh.name FOR UPDATE;
+	IF NOT FOUND THEN
+		RAISE EXCEPTION 'no model named "%"', name USING ERRCODE = 'undefined_object';
+	END IF;
+	PERFORM affinity.require_model_owner(r.name, r.owner, r.owner_name, 'refresh');
+	PERFORM set_config('search_path', r.search_path, true);
+	BEGIN
+		EXECUTE format('SELECT affinity.fit(user_id::bigint, item_id::bigint, weight::real, $1) FROM (%s) AS q',
+					   r.source_query)
+			INTO fitted USING r.options;
+		s := affinity.registry_session();
+		IF s.session_role IS DISTINCT FROM r.owner::oid OR s.acting_role IS DISTINCT FROM r.owner::oid THEN
+			RAISE EXCEPTION 'the source query switched to role %', current_user
+				USING ERRCODE = 'insufficient_privilege',
+					  DETAIL = pg_catalog.format('A refresh runs as the model''s owner %s from start to end.', r.owner_name);
+		END IF;
+		PERFORM set_config('search_path', 'pg_catalog, pg_temp', true);
+	EXCEPTION WHEN OTHERS THEN
+		GET STACKED DIAGNOSTICS msg = MESSAGE_TEXT, detail = PG_EXCEPTION_DETAIL;
+		IF coalesce(detail, '') = '' THEN
+			RAISE EXCEPTION 'refresh of model "%" failed: %', name, msg
+				USING ERRCODE = SQLSTATE, HINT = 'The current model stays in place.';
+		END IF;
+		RAISE EXCEPTION 'refresh of model "%" failed: %', name, msg
+			USING ERRCODE = SQLSTATE, DETAIL = detail,
+				  HINT = 'The current model stays in place.';
+	END;
+	-- after a revert the current version is not the newest one kept
+	SELECT greatest(r.version, coalesce(max(h.version), 0)) + 1 INTO new_version
+		FROM affinity.model_history h WHERE h.name = refresh.name;
+	d := affinity.describe(fitted);
+	result := jsonb_build_object(
+		'name', name, 'version', new_version, 'method', d->'method',
+		'rows', d->'rows_read', 'users', d->'users', 'items', d->'items',
+		'interactions', d->'interactions', 'fit_seconds', d->'fit_seconds',
+		'seconds', extract(epoch FROM clock_timestamp() - started),
+		'final_loss', d->'loss'->-1, 'size_bytes', d->'size_bytes');
+	UPDATE affinity.models m
+		SET model = fitted, version = new_version, fitted_at = now(), stats = result
+		WHERE m.name = refresh.name;
+	INSERT INTO affinity.model_history (name, version, model, fitted_at, stats)
+		VALUES (name, new_version, fitted, now(), result);
+	DELETE FROM affinity.model_history h
+		WHERE h.name = refresh.name AND h.version <= new_version - r.keep_versions;
+	RETURN result;
+END
+$$;
+
+-- revert_model: the owner's, in its own session, like refresh.
+CREATE OR REPLACE FUNCTION affinity.revert_model(name text, to_version integer DEFAULT NULL)
+	RETURNS jsonb
+	LANGUAGE plpgsql VOLATILE
+	SET search_path = pg_catalog, pg_temp
+AS $$
+DECLARE
+	r affinity.models;
+	h affinity.model_history;
+BEGIN
+	SELECT * INTO r FROM affinity.models m WHERE m.name = revert_model.name;
+	IF NOT FOUND THEN
+		RAISE EXCEPTION 'no model named "%"', name USING ERRCODE = 'undefined_object';
+	END IF;
+	PERFORM affinity.require_model_owner(r.name, r.owner, r.owner_name, 'revert');
+	SELECT * INTO r FROM affinity.models m WHERE m.name = revert_model.name FOR UPDATE;
+	IF NOT FOUND THEN
+		RAISE EXCEPTION 'no model named "%"', name USING ERRCODE = 'undefined_object';
+	END IF;
+	PERFORM affinity.require_model_owner(r.name, r.owner, r.owner_name, 'revert');
+	SELECT * INTO h FROM affinity.model_history x
+		WHERE x.name = revert_model.name
+		  AND x.version = coalesce(to_version,
+								   (SELECT max(y.version) FROM affinity.model_history y
+									WHERE y.name = revert_model.name AND y.version < r.version));
+	IF NOT FOUND THEN
+		RAISE EXCEPTION 'model "%" has no version % in its history', name,
+			coalesce(to_version::text, 'before ' || r.version)
+			USING ERRCODE = 'undefined_object',
+				  HINT = 'Kept versions are listed in affinity.model_history.';
+	END IF;
+	UPDATE affinity.models m
+		SET model = h.model, version = h.version, fitted_at = h.fitted_at, stats = h.stats
+		WHERE m.name = revert_model.name;
+	RETURN jsonb_build_object('name', name, 'version', h.version, 'fitted_at', h.fitted_at);
+END
+$$;
+
+-- Aggregates: what the final functions do ----------------------------------
+
+-- fit's final function frees the collected rows and keeps its result, and
+-- ranking_metrics' sorts the held-out pairs: PostgreSQL must not feed more
+-- rows after finalizing (window use), and fit's state must not be shared.
+-- PostgreSQL 15 cannot ALTER an aggregate's FINALFUNC_MODIFY, so the
+-- aggregates are made again with the same definition; nothing in the
+-- extension depends on them (refresh builds its call at run time), and a
+-- view of the user's that calls one makes this update fail with PostgreSQL's
+-- list of dependent objects (drop the view, update, create it again).
+DROP AGGREGATE affinity.fit(bigint, bigint, real);
+DROP AGGREGATE affinity.fit(bigint, bigint, real, jsonb);
+DROP AGGREGATE affinity.fit(text, text, real);
+DROP AGGREGATE affinity.fit(text, text, real, jsonb);
+DROP AGGREGATE affinity.ranking_metrics(affinity.model, bigint, bigint, integer);
+DROP AGGREGATE affinity.ranking_metrics(affinity.model, bigint, bigint);
+
+CREATE AGGREGATE affinity.fit(user_id bigint, item_id bigint, weight real) (
+	SFUNC = affinity.fit_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	COMBINEFUNC = affinity.fit_combinefn,
+	SERIALFUNC = affinity.fit_serialfn,
+	DESERIALFUNC = affinity.fit_deserialfn,
+	PARALLEL = SAFE
+);
+CREATE AGGREGATE affinity.fit(user_id bigint, item_id bigint, weight real, options jsonb) (
+	SFUNC = affinity.fit_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	COMBINEFUNC = affinity.fit_combinefn,
+	SERIALFUNC = affinity.fit_serialfn,
+	DESERIALFUNC = affinity.fit_deserialfn,
+	PARALLEL = SAFE
+);
+CREATE AGGREGATE affinity.fit(user_id text, item_id text, weight real) (
+	SFUNC = affinity.fit_text_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	COMBINEFUNC = affinity.fit_combinefn,
+	SERIALFUNC = affinity.fit_serialfn,
+	DESERIALFUNC = affinity.fit_deserialfn,
+	PARALLEL = SAFE
+);
+CREATE AGGREGATE affinity.fit(user_id text, item_id text, weight real, options jsonb) (
+	SFUNC = affinity.fit_text_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	COMBINEFUNC = affinity.fit_combinefn,
+	SERIALFUNC = affinity.fit_serialfn,
+	DESERIALFUNC = affinity.fit_deserialfn,
+	PARALLEL = SAFE
+);
+CREATE AGGREGATE affinity.ranking_metrics(model affinity.model, user_id bigint, item_id bigint, k integer) (
+	SFUNC = affinity.ranking_metrics_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.ranking_metrics_finalfn,
+	FINALFUNC_MODIFY = SHAREABLE,
+	COMBINEFUNC = affinity.ranking_metrics_combinefn,
+	SERIALFUNC = affinity.ranking_metrics_serialfn,
+	DESERIALFUNC = affinity.ranking_metrics_deserialfn,
+	PARALLEL = SAFE
+);
+CREATE AGGREGATE affinity.ranking_metrics(model affinity.model, user_id bigint, item_id bigint) (
+	SFUNC = affinity.ranking_metrics_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.ranking_metrics_finalfn,
+	FINALFUNC_MODIFY = SHAREABLE,
+	COMBINEFUNC = affinity.ranking_metrics_combinefn,
+	SERIALFUNC = affinity.ranking_metrics_serialfn,
+	DESERIALFUNC = affinity.ranking_metrics_deserialfn,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit(bigint, bigint, real) IS 'fit a model over (user, item, weight) rows with default options';
+COMMENT ON AGGREGATE affinity.fit(bigint, bigint, real, jsonb) IS 'fit a model over (user, item, weight) rows; options as jsonb';
+COMMENT ON AGGREGATE affinity.fit(text, text, real) IS 'fit a model over (user, item, weight) rows with text keys';
+COMMENT ON AGGREGATE affinity.fit(text, text, real, jsonb) IS 'fit a model over (user, item, weight) rows with text keys; options as jsonb';
+COMMENT ON AGGREGATE affinity.ranking_metrics(affinity.model, bigint, bigint) IS 'ranking metrics at k = 10 over held-out (user, item) rows';
+COMMENT ON AGGREGATE affinity.ranking_metrics(affinity.model, bigint, bigint, integer) IS 'precision, recall, NDCG, MAP, hit rate and coverage at k over held-out (user, item) rows';
