@@ -11,7 +11,17 @@ minute (pg_cron's finest granularity in the version Debian 12 ships):
   the run must be recorded as failed with affinity's message, and the
   current model, its version and its history must stay as they were.
 
-Both jobs are removed as soon as each has run once (and again on the way
+A third model belongs to a role that logs in and may only define models
+(the registry runs a model's query only in sessions logged in as its owner):
+
+* a job that a superuser schedules for that role (cron.schedule_in_database
+  with username => the owner) refreshes it: pg_cron's session logs in as the
+  owner, so the run succeeds and the version goes up by one;
+* a job of the superuser's own (cron.schedule) that refreshes the same model
+  is refused: the run is recorded as failed with affinity's
+  insufficient-privilege message naming the owner, and it changes nothing.
+
+The jobs are removed as soon as each has run once (and again on the way
 out).  pg_cron runs jobs only in the database named by cron.database_name;
 scripts/test preloads it with that set to the tests' database.  The test
 skips, saying why, when pg_cron is not installed or not set up for this
@@ -27,7 +37,14 @@ from _common import Checker, connect, drop_schema, skip
 SCHEMA = "cron_shop"
 GOOD = "cron_shop_nightly"
 BAD = "cron_shop_net"
-JOBS = {GOOD: "affinity_refresh_" + GOOD, BAD: "affinity_refresh_" + BAD}
+OWNED = "cron_shop_owned"
+OWNER_ROLE = "regress_cron_owner"
+# job key -> (model, job name, the role the job runs as; None = the scheduler)
+JOBS = {GOOD: (GOOD, "affinity_refresh_" + GOOD, None),
+        BAD: (BAD, "affinity_refresh_" + BAD, None),
+        "owner": (OWNED, "affinity_refresh_" + OWNED, OWNER_ROLE),
+        "superuser": (OWNED, "affinity_refresh_" + OWNED + "_by_superuser", None)}
+JOB_NAMES = [job for _, job, _ in JOBS.values()]
 WAIT_SECONDS = 130
 
 
@@ -51,14 +68,42 @@ def check_pg_cron(cur):
 
 
 def unschedule_ours(cur):
-    cur.execute("SELECT jobid FROM cron.job WHERE jobname = ANY(%s)", (list(JOBS.values()),))
+    cur.execute("SELECT jobid FROM cron.job WHERE jobname = ANY(%s)", (JOB_NAMES,))
     for (jobid,) in cur.fetchall():
         cur.execute("SELECT cron.unschedule(%s)", (jobid,))
 
 
+def drop_owner_role(cur):
+    cur.execute("SELECT count(*) FROM pg_roles WHERE rolname = %s", (OWNER_ROLE,))
+    if cur.fetchone()[0]:
+        cur.execute("REVOKE ALL ON affinity.models, affinity.model_history FROM %s" % OWNER_ROLE)
+        cur.execute("DROP OWNED BY %s" % OWNER_ROLE)
+        cur.execute("DROP ROLE %s" % OWNER_ROLE)
+
+
+def setup_owned(cur):
+    """A role that logs in and may only define models defines and fits OWNED
+    in a session of its own."""
+    cur.execute("CREATE ROLE %s LOGIN" % OWNER_ROLE)
+    cur.execute("GRANT USAGE ON SCHEMA %s TO %s" % (SCHEMA, OWNER_ROLE))
+    cur.execute("GRANT SELECT ON %s.purchases TO %s" % (SCHEMA, OWNER_ROLE))
+    cur.execute("GRANT SELECT, INSERT, UPDATE ON affinity.models TO %s" % OWNER_ROLE)
+    cur.execute("GRANT SELECT, INSERT, DELETE ON affinity.model_history TO %s" % OWNER_ROLE)
+    own = psycopg2.connect(user=OWNER_ROLE)
+    own.autocommit = True
+    with own.cursor() as ocur:
+        ocur.execute("""SELECT affinity.define_model(%%s,
+                          'SELECT customer_id AS user_id, product_id AS item_id, quantity AS weight
+                           FROM %s.purchases', '{"factors": 8, "iterations": 4, "threads": 1}')""" % SCHEMA,
+                     (OWNED,))
+        ocur.execute("SELECT affinity.refresh(%s)", (OWNED,))
+    own.close()
+
+
 def setup(cur):
     drop_schema(cur, SCHEMA)
-    cur.execute("DELETE FROM affinity.models WHERE name = ANY(%s)", ([GOOD, BAD],))
+    cur.execute("DELETE FROM affinity.models WHERE name = ANY(%s)", ([GOOD, BAD, OWNED],))
+    drop_owner_role(cur)
     cur.execute("CREATE SCHEMA %s" % SCHEMA)
     cur.execute("""CREATE TABLE %s.purchases AS
                    SELECT (50001 + c)::bigint AS customer_id,
@@ -78,6 +123,7 @@ def setup(cur):
                       GROUP BY customer_id, product_id', %%s)""" % (SCHEMA, SCHEMA), (BAD, opts))
     for name in (GOOD, BAD):
         cur.execute("SELECT affinity.refresh(%s)", (name,))
+    setup_owned(cur)
     # a return of five for a purchase of one or two: a negative net quantity
     cur.execute("""INSERT INTO %s.returns
                    SELECT customer_id, product_id, 5 FROM %s.purchases
@@ -144,10 +190,16 @@ def main():
         bad_user, bad_item = setup(cur)
         good_before = state(cur, GOOD)
         bad_before = state(cur, BAD)
+        owned_before = state(cur, OWNED)
 
-        for name, job in JOBS.items():
-            jobids[name] = one(cur, "SELECT cron.schedule(%s, '* * * * *', "
-                                    "format('SELECT affinity.refresh(%%L)', %s::text))", (job, name))
+        for key, (name, job, user) in JOBS.items():
+            if user is None:
+                jobids[key] = one(cur, "SELECT cron.schedule(%s, '* * * * *', "
+                                       "format('SELECT affinity.refresh(%%L)', %s::text))", (job, name))
+            else:
+                jobids[key] = one(cur, "SELECT cron.schedule_in_database(%s, '* * * * *', "
+                                       "format('SELECT affinity.refresh(%%L)', %s::text), "
+                                       "current_database(), username => %s)", (job, name, user))
         scheduled_at = one(cur, "SELECT clock_timestamp()")
         print("scheduled jobs %s at %s; waiting for the next minute"
               % (sorted(jobids.values()), scheduled_at.strftime("%H:%M:%S")))
@@ -156,7 +208,7 @@ def main():
         print("waited %.0f s for the runs" % waited)
         if len(runs) != len(jobids):
             report_jobs(cur, jobids.values())
-            c.check(False, "both scheduled refreshes ran within %d s" % WAIT_SECONDS,
+            c.check(False, "all %d scheduled refreshes ran within %d s" % (len(jobids), WAIT_SECONDS),
                     "finished: %s" % sorted(runs))
             c.finish()
 
@@ -193,16 +245,35 @@ def main():
         c.check(bad_after == bad_before,
                 "its current model, version and history stayed as they were",
                 "before %r, after %r" % (bad_before[:2] + bad_before[3:], bad_after[:2] + bad_after[3:]))
+
+        # the owner's model: refreshed by the owner's job, refused to the superuser's
+        status, msg, start, end = runs[jobids["owner"]]
+        c.check(status == "succeeded",
+                "the refresh of %s scheduled to run as its owner %s succeeded" % (OWNED, OWNER_ROLE),
+                "status %s: %s" % (status, msg))
+        status, msg, start, end = runs[jobids["superuser"]]
+        msg = msg or ""
+        want = 'refresh of model "%s" must run in a session of its owner, %s' % (OWNED, OWNER_ROLE)
+        c.check(status == "failed" and want in msg,
+                "the superuser's own job refreshing %s is refused" % OWNED,
+                "status %s: %r" % (status, msg.strip()))
+        owned_after = state(cur, OWNED)
+        c.check(owned_after[0] == owned_before[0] + 1,
+                "its version went up by one (the owner's run alone)",
+                "%s -> %s" % (owned_before[0], owned_after[0]))
+        c.check(one(cur, "SELECT owner::text FROM affinity.models WHERE name = %s", (OWNED,)) == OWNER_ROLE,
+                "and it still belongs to %s" % OWNER_ROLE)
         c.check(one(cur, "SELECT count(*) FROM cron.job WHERE jobname = ANY(%s)",
-                    (list(JOBS.values()),)) == 0, "both jobs are unscheduled")
+                    (JOB_NAMES,)) == 0, "every job is unscheduled")
     finally:
         try:
             unschedule_ours(cur)
             if jobids:
                 cur.execute("DELETE FROM cron.job_run_details WHERE jobid = ANY(%s)",
                             (list(jobids.values()),))
-            cur.execute("DELETE FROM affinity.models WHERE name = ANY(%s)", ([GOOD, BAD],))
+            cur.execute("DELETE FROM affinity.models WHERE name = ANY(%s)", ([GOOD, BAD, OWNED],))
             drop_schema(cur, SCHEMA)
+            drop_owner_role(cur)
             if created:
                 cur.execute("DROP EXTENSION pg_cron")
         except psycopg2.Error as e:
