@@ -61,6 +61,8 @@ VALUES = {
                              "'{{1,2},{3,4}}'", BIG_TEXTS]),
     "cstring": ("'QUZNRA=='", ["NULL", "''", "'not base64!'", "repeat('A', 100000)"]),
     "name": ("'garden'", ["NULL", "''"]),
+    # a role: the current one, none (oid 0), and an oid no role has
+    "regrole": ("current_user::text", ["NULL", "'-'", "'4294967295'"]),
 }
 
 # Options of the fit aggregate: ordinary, and awkward.
@@ -212,13 +214,20 @@ def extension_functions(cur):
 
 
 def script_names():
-    """Names created by the install and upgrade scripts (src/affinity--*.sql)."""
+    """Names created by the install and upgrade scripts (src/affinity--*.sql),
+    less the functions a later script drops for good."""
     text = ""
     for path in sorted(glob.glob(os.path.join(REPO_DIR, "src", "affinity--*.sql"))):
         with open(path) as f:
             text += f.read()
-    return set(re.findall(r"CREATE\s+(?:OR\s+REPLACE\s+)?(?:FUNCTION|AGGREGATE)\s+affinity\.(\w+)\s*\(",
-                          text, re.I))
+    names = set()
+    for m in re.finditer(r"(CREATE\s+(?:OR\s+REPLACE\s+)?(?:FUNCTION|AGGREGATE)|DROP\s+FUNCTION)"
+                         r"\s+affinity\.(\w+)\s*\(", text, re.I):
+        if m.group(1).upper().startswith("DROP"):
+            names.discard(m.group(2))
+        else:
+            names.add(m.group(2))
+    return names
 
 
 def cast(expr, typ):
