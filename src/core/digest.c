@@ -277,20 +277,19 @@ aff_b64_decoded_max(size_t n)
 	return (n / 4 + 1) * 3;
 }
 
-static int
-b64_value(unsigned char c)
+/* Sextet of each character, -1 outside the alphabet (filled on first use). */
+static int8_t b64_table[256];
+static int	b64_table_ready = 0;
+
+static void
+b64_fill_table(void)
 {
-	if (c >= 'A' && c <= 'Z')
-		return c - 'A';
-	if (c >= 'a' && c <= 'z')
-		return c - 'a' + 26;
-	if (c >= '0' && c <= '9')
-		return c - '0' + 52;
-	if (c == '+')
-		return 62;
-	if (c == '/')
-		return 63;
-	return -1;
+	int			i;
+
+	memset(b64_table, -1, sizeof(b64_table));
+	for (i = 0; i < 64; i++)
+		b64_table[(unsigned char) b64_alphabet[i]] = (int8_t) i;
+	b64_table_ready = 1;
 }
 
 /*
@@ -307,10 +306,33 @@ aff_b64_decode(const char *in, size_t n, uint8_t *out, size_t *bad_at)
 	int			pad = 0;
 	size_t		i;
 
+	if (!b64_table_ready)
+		b64_fill_table();		/* idempotent: a race only fills it twice */
 	for (i = 0; i < n; i++)
 	{
 		unsigned char c = (unsigned char) in[i];
 		int			v;
+
+		/* fast path: four alphabet characters at a group boundary */
+		if (held == 0 && pad == 0 && i + 4 <= n)
+		{
+			int			a = b64_table[(unsigned char) in[i]];
+			int			b = b64_table[(unsigned char) in[i + 1]];
+			int			d = b64_table[(unsigned char) in[i + 2]];
+			int			e = b64_table[(unsigned char) in[i + 3]];
+
+			if ((a | b | d | e) >= 0)
+			{
+				uint32_t	w = ((uint32_t) a << 18) | ((uint32_t) b << 12) |
+					((uint32_t) d << 6) | (uint32_t) e;
+
+				*o++ = (uint8_t) (w >> 16);
+				*o++ = (uint8_t) (w >> 8);
+				*o++ = (uint8_t) w;
+				i += 3;
+				continue;
+			}
+		}
 
 		if (c == ' ' || c == '\t' || c == '\n' || c == '\r' || c == '\f' || c == '\v')
 			continue;
@@ -335,7 +357,7 @@ aff_b64_decode(const char *in, size_t n, uint8_t *out, size_t *bad_at)
 			}
 			continue;
 		}
-		if (pad != 0 || (v = b64_value(c)) < 0)
+		if (pad != 0 || (v = b64_table[c]) < 0)
 			goto bad;
 		acc = (acc << 6) | (uint32_t) v;
 		if (++held == 4)
