@@ -8,6 +8,8 @@ OBJS = \
 	src/core/als.o \
 	src/core/topk.o \
 	src/core/model_format.o \
+	src/core/digest.o \
+	src/core/blas_pool.o \
 	src/core/ease.o \
 	src/core/knn.o \
 	src/pg/guc.o \

@@ -17,7 +17,14 @@ format (pg_dump -Fc, restored with pg_restore) and in the plain format
   pg_extension_config_dump (PostgreSQL documentation, "Extension
   Configuration Tables");
 * the registry keeps working: get_model serves the restored current model,
-  and a refresh makes the next version number.
+  and a refresh makes the next version number;
+* a table of models fitted at every option bound (factors 1 and 1024,
+  iterations 1, regularization 1e8 and the smallest positive double,
+  alpha 0 and 1e6, epsilon 1e-6 and 1e6, linear and log confidence, cg and
+  cholesky, every method, bigint and text keys) restores every row, each
+  model with its fingerprint and text form; a fit whose arithmetic leaves
+  the finite range (alpha 1e300) is an error, never a value that cannot be
+  restored.
 
 Runs with the PostgreSQL 15 client programs, as the role in PGUSER
 (scripts/test: postgres), with dump files in AFFINITY_TEST_TMP.
@@ -85,6 +92,52 @@ def build_source(cur):
     cur.execute("SELECT affinity.refresh(%s)", (NAME,))
     cur.execute("SELECT affinity.revert_model(%s)", (NAME,))
     cur.execute("RESET search_path")
+    build_bound_models(cur)
+
+
+# (label, options, text keys?) of the models fitted at the option bounds
+BOUNDS = [
+    ("factors 1", '{"factors": 1, "iterations": 2}', False),
+    ("factors 1024", '{"factors": 1024, "iterations": 1}', False),
+    ("iterations 1", '{"factors": 4, "iterations": 1}', False),
+    ("regularization 1e8", '{"factors": 4, "iterations": 2, "regularization": 1e8}', False),
+    ("regularization min cg", '{"factors": 4, "iterations": 2, "regularization": 5e-324}', False),
+    ("regularization min cholesky",
+     '{"factors": 4, "iterations": 2, "regularization": 5e-324, "solver": "cholesky"}', False),
+    ("alpha 0", '{"factors": 4, "iterations": 2, "alpha": 0}', False),
+    ("alpha 1e6 linear", '{"factors": 4, "iterations": 2, "alpha": 1e6, "confidence": "linear"}', False),
+    ("alpha 1e6 log", '{"factors": 4, "iterations": 2, "alpha": 1e6, "confidence": "log"}', False),
+    ("epsilon 1e-6", '{"factors": 4, "iterations": 2, "confidence": "log", "epsilon": 1e-6}', False),
+    ("epsilon 1e6", '{"factors": 4, "iterations": 2, "confidence": "log", "epsilon": 1e6}', False),
+    ("cholesky linear", '{"factors": 6, "iterations": 2, "solver": "cholesky", "confidence": "linear"}',
+     False),
+    ("als text keys", '{"factors": 3, "iterations": 2}', True),
+    ("ease", '{"method": "ease"}', False),
+    ("ease regularization min", '{"method": "ease", "regularization": 5e-324}', False),
+    ("ease regularization 1e8", '{"method": "ease", "regularization": 1e8}', False),
+    ("ease text keys", '{"method": "ease"}', True),
+    ("item_knn 1 neighbour", '{"method": "item_knn", "neighbors": 1}', False),
+    ("item_knn text keys", '{"method": "item_knn", "neighbors": 3}', True),
+    ("popularity", '{"method": "popularity"}', False),
+    ("popularity text keys", '{"method": "popularity"}', True),
+]
+
+
+def build_bound_models(cur):
+    """shop.bound_models: one model per option bound, fitted on tiny data."""
+    cur.execute("""CREATE TABLE shop.tiny AS
+                   SELECT (50001 + c)::bigint AS customer_id,
+                          (101 + abs(hashint4(c * 41 + k)) % 12)::bigint AS product_id,
+                          (1 + abs(hashint4(c * 7 + k)) % 3)::real AS quantity
+                   FROM generate_series(0, 29) c, generate_series(1, 4) k""")
+    cur.execute("CREATE TABLE shop.bound_models (label text PRIMARY KEY, model affinity.model NOT NULL)")
+    for label, opts, text in BOUNDS:
+        keys = ("'customer-' || customer_id, 'product ' || product_id" if text
+                else "customer_id, product_id")
+        cur.execute("""INSERT INTO shop.bound_models
+                       SELECT %%s, affinity.fit(%s, quantity,
+                                                (%%s::jsonb || '{"threads": 1}'))
+                       FROM shop.tiny""" % keys, (label, opts))
 
 
 def model_facts(cur, expr, args):
@@ -124,6 +177,9 @@ def snapshot(dbname):
     cur.execute("""SELECT name, version, fitted_at, stats::text, md5(model::text)
                    FROM affinity.model_history ORDER BY name, version""")
     snap["history rows"] = cur.fetchall()
+    cur.execute("""SELECT label, affinity.describe(model)->>'fingerprint', md5(model::text)
+                   FROM shop.bound_models ORDER BY label""")
+    snap["models at the option bounds"] = cur.fetchall()
     snap["registry current"] = model_facts(cur, "affinity.get_model(%s)", (NAME,))
     cur.execute("SELECT version FROM affinity.model_history WHERE name = %s ORDER BY version", (NAME,))
     for (v,) in cur.fetchall():
@@ -184,6 +240,18 @@ def main():
         c.check(current == 2 and newest == 3 and kept == 3,
                 "the source registry: current version 2 (reverted), versions 1-3 kept",
                 "current %s, newest %s, %s kept" % (current, newest, kept))
+        c.check(len(want["models at the option bounds"]) == len(BOUNDS),
+                "the source holds a model at each of the %d option bounds" % len(BOUNDS))
+        scur = db_conn(SOURCE).cursor()
+        try:
+            scur.execute("""SELECT affinity.fit(customer_id, product_id, quantity,
+                                   '{"factors": 4, "iterations": 2, "alpha": 1e300, "threads": 1}')
+                            FROM shop.tiny""")
+            c.check(False, "a fit whose loss leaves the finite range (alpha 1e300) is an error")
+        except psycopg2.Error as e:
+            c.check(True, "a fit whose loss leaves the finite range (alpha 1e300) is an error",
+                    "%s: %s" % (e.pgcode, e.diag.message_primary))
+        scur.connection.close()
 
         # custom format
         dump = os.path.join(tmp, "shop.dump")

@@ -70,7 +70,9 @@ typedef struct CachedModel
 	Oid			toastrelid;		/* InvalidOid for values that came in memory */
 	Oid			valueid;
 	uint64		size;
-	uint64		checksum;
+	uint64		checksum;		/* as stored in the header */
+	uint8		digest[32];		/* content digest, as stored (zero: none) */
+	bool		has_digest;
 	bytea	   *value;			/* aligned copy of the value */
 	AffModelView view;
 	double	   *gram;			/* Y^T Y, on first use */

@@ -9,9 +9,11 @@
 #include <unistd.h>
 
 #include "lib/stringinfo.h"
+#include "miscadmin.h"
 #include "utils/guc.h"
 #include "utils/json.h"
 
+#include "../core/blas_pool.h"
 #include "../core/parallel.h"
 
 PG_MODULE_MAGIC;
@@ -77,13 +79,24 @@ _PG_init(void)
 							 PGC_USERSET, 0, NULL, NULL, NULL);
 	MarkGUCPrefixReserved("affinity");
 
-	/* BLAS runs single-threaded except inside a fit's Gram products */
+	/*
+	 * BLAS runs single-threaded except inside a fit's Gram products.  The
+	 * pool OpenBLAS started when it was loaded is replaced by one started
+	 * with every signal blocked (blas_pool.c); a postmaster that preloads
+	 * the library starts no threads, its backends do so on their first fit.
+	 */
 	openblas_set_num_threads(1);
+	if (IsUnderPostmaster)
+		aff_blas_pool_prepare(resolve_threads(affinity_threads));
 }
 
 /*
  * Threads for a fit: 0 means all online CPUs; the result is capped by
- * affinity.max_threads (0 = online CPUs).
+ * affinity.max_threads (0 = online CPUs) and by the number of threads that
+ * may call OpenBLAS at once (aff_blas_max_callers: its table of work
+ * buffers; see DEVELOPERS.md, "Threads").  Called on the backend's thread
+ * before every fit, so it also grows OpenBLAS's pool, signals blocked, to
+ * the threads that fit's Gram products will ask for.
  */
 int
 resolve_threads(int requested)
@@ -92,7 +105,12 @@ resolve_threads(int requested)
 	int			cap = affinity_max_threads > 0 ? affinity_max_threads : cpus;
 	int			n = requested > 0 ? requested : cpus;
 
-	return n > cap ? cap : n;
+	if (n > cap)
+		n = cap;
+	if (n > aff_blas_max_callers())
+		n = aff_blas_max_callers();
+	aff_blas_pool_prepare(n);
+	return n;
 }
 
 static void

@@ -4,13 +4,26 @@
  *		and kept, decoded and ready to serve, with the derived data serving
  *		needs (the Gram matrix for fold-in, vector norms for cosine).
  *
- * Entries are keyed by the TOAST pointer (toast relation, value id, raw
- * size) plus the checksum stored in the model's header; values that arrive
- * in memory (a model computed in the same query, a parameter) are keyed by
- * size and checksum alone.  A stored value never changes, and a reused
- * value id comes with a different checksum, so a key names one value.
- * Within one query the key of a TOAST pointer is verified once (a header
- * slice read) and remembered in fn_extra; later queries verify again.
+ * Identity.  A value's identity is its content digest, the SHA-256 of its
+ * content in its header (model_io.c verifies it on every way in and
+ * model_build writes it, so no value with a chosen digest can be made; the
+ * checksum, a fast hash anyone can steer, is never trusted alone).  Entries
+ * of stored values are keyed by the TOAST pointer (toast relation, value
+ * id, raw size) plus digest and checksum; values that arrive in memory (a
+ * model computed in the same query, a parameter, a value stored inline)
+ * by size, digest and checksum.  An in-memory hit is also confirmed by
+ * comparing the bytes with the cached copy when the value is small enough
+ * to have been stored inline (CONFIRM_BYTES), or has no digest.
+ *
+ * A value without a digest can only be one stored before the digest
+ * existed (input fills it in), i.e. a value this extension made: a TOAST
+ * pointer to one names it by its value id, which no other value shares
+ * while it exists; another such value could reuse the id only after this
+ * one is deleted, vacuumed and the OID counter has wrapped around, and
+ * would also need the same raw size and checksum.
+ *
+ * Within one query the key of a TOAST pointer is read once (a header slice)
+ * and remembered in fn_extra; later queries read it again.
  *
  * The cache lives in its own context under TopMemoryContext and is bounded
  * by affinity.model_cache_size (MB), least recently used first out; the
@@ -26,8 +39,18 @@
 #include "utils/memutils.h"
 
 #include "../core/als.h"
+#include "../core/digest.h"
 
 #define CACHE_MAX_ENTRIES 64
+
+/*
+ * In-memory values up to this size are compared byte for byte on a hit.
+ * It covers every value that can be stored inline in a row, where a value
+ * from before this version could carry anything in its digest field: an
+ * inline datum is under 2 kB compressed, which neither pglz nor lz4 expands
+ * past about 0.5 MB.
+ */
+#define CONFIRM_BYTES ((Size) 1024 * 1024)
 
 int			affinity_model_cache_size_mb = 256;
 
@@ -39,18 +62,31 @@ static Size cache_bytes = 0;
 static int64 cache_hits = 0;
 static int64 cache_loads = 0;
 
-/* What fn_extra remembers: the key verified for this query's pointer. */
+/* The identity read from a value's header. */
+typedef struct ModelKey
+{
+	uint64		checksum;
+	uint8		digest[AFF_SHA256_BYTES];
+} ModelKey;
+
+/* What fn_extra remembers: the key read for this query's pointer. */
 typedef struct QueryKey
 {
 	Oid			toastrelid;
 	Oid			valueid;
 	int32		rawsize;
-	uint64		checksum;
+	ModelKey	key;
 	bool		valid;
 } QueryKey;
 
+/*
+ * The entry for (toastrelid, valueid, size, key).  For an in-memory value
+ * (v not NULL) a candidate must also hold the same bytes when v is small
+ * or has no digest.
+ */
 static CachedModel *
-lookup(Oid toastrelid, Oid valueid, uint64 size, uint64 checksum)
+lookup(Oid toastrelid, Oid valueid, uint64 size, const ModelKey *key,
+	   const struct varlena *v)
 {
 	int			i;
 
@@ -58,9 +94,14 @@ lookup(Oid toastrelid, Oid valueid, uint64 size, uint64 checksum)
 	{
 		CachedModel *e = entries[i];
 
-		if (e->toastrelid == toastrelid && e->valueid == valueid &&
-			e->size == size && e->checksum == checksum)
-			return e;
+		if (e->toastrelid != toastrelid || e->valueid != valueid ||
+			e->size != size || e->checksum != key->checksum ||
+			memcmp(e->digest, key->digest, AFF_SHA256_BYTES) != 0)
+			continue;
+		if (v != NULL && (size <= CONFIRM_BYTES || !e->has_digest) &&
+			memcmp(e->value, v, size) != 0)
+			continue;
+		return e;
 	}
 	return NULL;
 }
@@ -122,7 +163,7 @@ trim(CachedModel *keep)
  * it was.
  */
 static CachedModel *
-insert(Oid toastrelid, Oid valueid, const struct varlena *v, uint64 checksum)
+insert(Oid toastrelid, Oid valueid, const struct varlena *v, const ModelKey *key)
 {
 	Size		size = VARSIZE(v);
 	MemoryContext cxt;
@@ -153,7 +194,9 @@ insert(Oid toastrelid, Oid valueid, const struct varlena *v, uint64 checksum)
 	e->toastrelid = toastrelid;
 	e->valueid = valueid;
 	e->size = size;
-	e->checksum = checksum;
+	e->checksum = key->checksum;
+	memcpy(e->digest, key->digest, AFF_SHA256_BYTES);
+	e->has_digest = !aff_model_digest_unset((const uint8 *) e->value);
 	e->bytes = size;
 	entries[n_entries++] = e;
 	cache_bytes += size;
@@ -161,9 +204,9 @@ insert(Oid toastrelid, Oid valueid, const struct varlena *v, uint64 checksum)
 	return e;
 }
 
-/* The checksum in the header of an in-memory value (after a size check). */
-static uint64
-header_checksum(const struct varlena *v)
+/* The identity in the header of a value (after a size check). */
+static void
+header_key(const struct varlena *v, ModelKey *key)
 {
 	AffModelHeader h;
 
@@ -174,18 +217,18 @@ header_checksum(const struct varlena *v)
 				 errdetail("The value has %u bytes, fewer than a model header.",
 						   (unsigned) VARSIZE(v))));
 	memcpy(&h, v, sizeof(h));
-	return h.checksum;
+	key->checksum = h.checksum;
+	memcpy(key->digest, h.content_digest, AFF_SHA256_BYTES);
 }
 
-/* Read a TOAST pointer's header slice and return its checksum. */
-static uint64
-toasted_checksum(struct varlena *raw)
+/* Read a TOAST pointer's header slice and its identity. */
+static void
+toasted_key(struct varlena *raw, ModelKey *key)
 {
 	struct varlena *slice = detoast_attr_slice(raw, 0, sizeof(AffModelHeader));
-	uint64		c = header_checksum(slice);
 
+	header_key(slice, key);
 	pfree(slice);
-	return c;
 }
 
 /*
@@ -216,15 +259,15 @@ model_get(FunctionCallInfo fcinfo, int argno)
 			qk->toastrelid = ptr.va_toastrelid;
 			qk->valueid = ptr.va_valueid;
 			qk->rawsize = ptr.va_rawsize;
-			qk->checksum = toasted_checksum(raw);
+			toasted_key(raw, &qk->key);
 			qk->valid = true;
 		}
-		e = lookup(qk->toastrelid, qk->valueid, qk->rawsize, qk->checksum);
+		e = lookup(qk->toastrelid, qk->valueid, qk->rawsize, &qk->key, NULL);
 		if (e == NULL)
 		{
 			struct varlena *v = detoast_attr(raw);
 
-			e = insert(qk->toastrelid, qk->valueid, v, qk->checksum);
+			e = insert(qk->toastrelid, qk->valueid, v, &qk->key);
 			pfree(v);
 		}
 		else
@@ -233,11 +276,12 @@ model_get(FunctionCallInfo fcinfo, int argno)
 	else
 	{
 		struct varlena *v = (struct varlena *) PG_DETOAST_DATUM(PointerGetDatum(raw));
-		uint64		c = header_checksum(v);
+		ModelKey	key;
 
-		e = lookup(InvalidOid, InvalidOid, VARSIZE(v), c);
+		header_key(v, &key);
+		e = lookup(InvalidOid, InvalidOid, VARSIZE(v), &key, v);
 		if (e == NULL)
-			e = insert(InvalidOid, InvalidOid, v, c);
+			e = insert(InvalidOid, InvalidOid, v, &key);
 		else
 			cache_hits++;
 	}

@@ -3,22 +3,25 @@
  *		The affinity.model type: text and binary I/O, building values from
  *		engine output, and fetching them for the serving functions.
  *
- * Text form: base64 of the value's bytes after the varlena length word
- * (4/3 of the binary size, so a plain pg_dump carries models up to about
- * 750 MB).  Binary form: the same bytes.  Both ways in run the engine's
- * full validation.
+ * Text form: base64 of the value's bytes after the varlena length word,
+ * 4/3 of the binary size.  Binary form: the same bytes.  No value over
+ * AFF_MAX_MODEL_BYTES is built or accepted, so the text form of every
+ * value fits PostgreSQL's 1 GB string limit, as pg_dump needs.
+ *
+ * Every way in (text input, binary receive) and every value built here
+ * passes the same checks: the engine's full validation, the text keys
+ * against the database encoding, and the content digest (SHA-256), which
+ * the serving cache uses as the value's identity.  A value from before the
+ * digest existed (its digest field is zero) gets one on its way in.
  */
 #include "affinity_pg.h"
 
-#include <ctype.h>
-
-#include "common/base64.h"
 #include "libpq/pqformat.h"
+#include "mb/pg_wchar.h"
 #include "miscadmin.h"
 #include "utils/memutils.h"
 
-/* Largest value we build: a varlena holds at most 1 GB. */
-#define MODEL_MAX_BYTES ((uint64) 0x3FFFFFFF)
+#include "../core/digest.h"
 
 static void *
 context_alloc(void *ctx, size_t size)
@@ -123,108 +126,238 @@ seconds_since(instr_time start)
 	return INSTR_TIME_GET_DOUBLE(now);
 }
 
-/* Encode parts into a new varlena in CurrentMemoryContext. */
+/*
+ * Check the text keys of one side (users or items) of a validated view:
+ * valid in the database encoding, no NUL byte.  On failure sets *index to
+ * the key's index and returns false; *nul tells which check failed.
+ */
+static bool
+text_keys_valid(const int64 *off, const char *text, int64 n, int64 *index, bool *nul)
+{
+	int			enc = GetDatabaseEncoding();
+	int64		i;
+
+	for (i = 0; i < n; i++)
+	{
+		const char *s = text + off[i];
+		int			len = (int) (off[i + 1] - off[i]);
+
+		*index = i;
+		*nul = memchr(s, '\0', len) != NULL;
+		if (*nul || !pg_verify_mbstr(enc, s, len, true))
+			return false;
+	}
+	return true;
+}
+
+/*
+ * Raise the error for text keys that text_keys_valid refused.  built means
+ * the extension made the value itself, which must never happen.
+ */
+static void
+report_bad_text_key(const char *what, int64 index, bool nul, bool built)
+{
+	const char *why = nul ? "holds a NUL byte" : "is not valid in the database encoding";
+
+	if (built)
+		ereport(ERROR,
+				(errcode(ERRCODE_INTERNAL_ERROR),
+				 errmsg("affinity built a model value that fails its own validation"),
+				 errdetail("The text of %s key index " INT64_FORMAT " %s (%s).",
+						   what, index, why, GetDatabaseEncodingName())));
+	ereport(ERROR,
+			(errcode(ERRCODE_CHARACTER_NOT_IN_REPERTOIRE),
+			 errmsg("invalid affinity.model value"),
+			 errdetail("The text of %s key index " INT64_FORMAT " %s (%s).",
+					   what, index, why, GetDatabaseEncodingName()),
+			 errhint("Text keys are stored in the database encoding; a value made in a database of another encoding has to be fitted again here.")));
+}
+
+/* The text checks of a validated view (nothing for bigint keys). */
+static void
+check_text_keys(const AffModelView *view, bool built)
+{
+	int64		index;
+	bool		nul;
+
+	if (view->h->key_type != AFF_KEYS_TEXT)
+		return;
+	if (!text_keys_valid(view->user_text_off, view->user_text, view->h->n_users, &index, &nul))
+		report_bad_text_key("user", index, nul, built);
+	if (!text_keys_valid(view->item_text_off, view->item_text, view->h->n_items, &index, &nul))
+		report_bad_text_key("item", index, nul, built);
+}
+
+/* Refuse a value of size bytes over AFF_MAX_MODEL_BYTES. */
+static void
+check_model_size(uint64 size, bool building)
+{
+	if (size <= AFF_MAX_MODEL_BYTES)
+		return;
+	if (building)
+		ereport(ERROR,
+				(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
+				 errmsg("model is too large for one value"),
+				 errdetail("It needs " UINT64_FORMAT " bytes; a model value holds at most " UINT64_FORMAT " bytes (720 MB), so that its text form fits a dump.",
+						   size, (uint64) AFF_MAX_MODEL_BYTES),
+				 errhint("Fit fewer items: raise min_item_interactions, filter the rows, or use item_knn instead of ease.")));
+	ereport(ERROR,
+			(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
+			 errmsg("affinity.model value is too large"),
+			 errdetail("The value has " UINT64_FORMAT " bytes; the largest accepted is " UINT64_FORMAT " bytes (720 MB).",
+					   size, (uint64) AFF_MAX_MODEL_BYTES)));
+}
+
+/*
+ * Encode parts into a new varlena in CurrentMemoryContext, seal it with
+ * its content digest and run every check a value meets on its way in.  A
+ * failed check is an internal error: every value the extension returns can
+ * be restored.
+ */
 bytea *
 model_build(const AffModelParts *parts)
 {
+	AffModelParts p = *parts;
+	AffModelView view;
 	AffError	err;
 	uint64		size;
 	bytea	   *v;
 
-	if (aff_model_size(parts, &size, &err) != AFF_OK)
+	/* the fingerprint is computed over a header whose digest is zero */
+	memset(p.h.content_digest, 0, sizeof(p.h.content_digest));
+	if (aff_model_size(&p, &size, &err) != AFF_OK)
 		report_engine_error(&err);
-	if (size > MODEL_MAX_BYTES)
-		ereport(ERROR,
-				(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
-				 errmsg("model is too large for one value"),
-				 errdetail("It needs " UINT64_FORMAT " bytes; a value holds at most 1 GB.", size),
-				 errhint("Use fewer factors, or filter rare users and items with min_user_interactions and min_item_interactions.")));
+	check_model_size(size, true);
 	v = (bytea *) palloc_extended(size, MCXT_ALLOC_HUGE);
-	aff_model_write(parts, (uint8 *) v, size);
+	aff_model_write(&p, (uint8 *) v, size);
 	SET_VARSIZE(v, size);
+	aff_model_seal((uint8 *) v, size);
+	if (aff_model_validate((const uint8 *) v, size, &view, &err) != AFF_OK)
+		ereport(ERROR,
+				(errcode(ERRCODE_INTERNAL_ERROR),
+				 errmsg("affinity built a model value that fails its own validation"),
+				 errdetail("%s: %s", err.msg, err.detail)));
+	check_text_keys(&view, true);
 	return v;
 }
 
-/* Copy len bytes after a fresh varlena word and validate the result. */
-static bytea *
-model_from_bytes(const char *data, int len)
+/*
+ * The checks of a value on its way in (v: a fresh varlena of its own,
+ * modified in place): size, full validation, text keys, content digest.
+ * A value without a digest (written before the digest existed) gets one,
+ * and the checksum that covers it; its fingerprint stays as stored.
+ */
+static void
+model_accept(bytea *v)
 {
-	bytea	   *v;
+	uint64		size = VARSIZE(v);
 	AffModelView view;
 	AffError	err;
+	uint8		digest[AFF_SHA256_BYTES];
 
-	if (len < (int) sizeof(AffModelHeader) - 4)
+	check_model_size(size, false);
+	if (size < sizeof(AffModelHeader))
 		ereport(ERROR,
 				(errcode(ERRCODE_INVALID_BINARY_REPRESENTATION),
 				 errmsg("invalid affinity.model value"),
-				 errdetail("The value has %d bytes, fewer than a model header.", len)));
-	v = (bytea *) palloc(len + 4);
-	SET_VARSIZE(v, len + 4);
-	memcpy((char *) v + 4, data, len);
-	if (aff_model_validate((const uint8 *) v, len + 4, &view, &err) != AFF_OK)
+				 errdetail("The value has " UINT64_FORMAT " bytes, fewer than a model header.",
+						   size - VARHDRSZ)));
+	if (aff_model_validate((const uint8 *) v, size, &view, &err) != AFF_OK)
 		report_engine_error(&err);
-	return v;
+	check_text_keys(&view, false);
+	if (aff_model_digest_unset((const uint8 *) v))
+	{
+		aff_model_seal((uint8 *) v, size);
+		return;
+	}
+	aff_model_digest((const uint8 *) v, size, digest);
+	if (memcmp(digest, view.h->content_digest, AFF_SHA256_BYTES) != 0)
+		ereport(ERROR,
+				(errcode(ERRCODE_INVALID_BINARY_REPRESENTATION),
+				 errmsg("affinity.model content digest mismatch"),
+				 errdetail("The value's content does not match the SHA-256 digest in its header; it was damaged or altered.")));
 }
 
 PG_FUNCTION_INFO_V1(model_in);
 
+/*
+ * Text input: base64, white space ignored, decoded straight into the new
+ * value (no copy of the text is made).
+ */
 Datum
 model_in(PG_FUNCTION_ARGS)
 {
 	char	   *in = PG_GETARG_CSTRING(0);
-	char	   *text = palloc(strlen(in) + 1);
-	int			tlen = 0;
-	int			cap;
-	char	   *raw;
-	int			n;
-	char	   *c;
+	size_t		tlen = strlen(in);
+	size_t		cap = aff_b64_decoded_max(tlen);
+	size_t		bad_at;
+	int64		n;
+	bytea	   *v;
 
-	/* line breaks and blanks, as wrapped base64 has, are ignored */
-	for (c = in; *c; c++)
-		if (!isspace((unsigned char) *c))
-			text[tlen++] = *c;
-	text[tlen] = '\0';
-	cap = pg_b64_dec_len(tlen);
-	raw = palloc(cap + 1);
-	n = pg_b64_decode(text, tlen, raw, cap);
-
+	if (cap > MaxAllocHugeSize - VARHDRSZ)
+		elog(ERROR, "affinity.model text of %zu characters cannot be decoded", tlen);
+	v = (bytea *) palloc_extended(cap + VARHDRSZ, MCXT_ALLOC_HUGE);
+	n = aff_b64_decode(in, tlen, (uint8 *) VARDATA(v), &bad_at);
 	if (n < 0)
 		ereport(ERROR,
 				(errcode(ERRCODE_INVALID_TEXT_REPRESENTATION),
 				 errmsg("invalid input syntax for type affinity.model"),
-				 errdetail("The text is not valid base64 (%d characters).", tlen),
+				 errdetail("The text is not valid base64 at character %zu of %zu.",
+						   bad_at + 1, tlen),
 				 errhint("A model's text form is what its output gives, for example in pg_dump.")));
-	PG_RETURN_POINTER(model_from_bytes(raw, n));
+	check_model_size((uint64) n + VARHDRSZ, false);
+	SET_VARSIZE(v, n + VARHDRSZ);
+	model_accept(v);
+	PG_RETURN_POINTER(v);
 }
 
 PG_FUNCTION_INFO_V1(model_out);
 
+/*
+ * Text output: base64 without line breaks, sized over size_t (the text of
+ * a value of AFF_MAX_MODEL_BYTES is 960 MB).  A value that cannot have a
+ * text form under 1 GB (one built before the limit) is refused with the
+ * way out.
+ */
 Datum
 model_out(PG_FUNCTION_ARGS)
 {
 	bytea	   *v = PG_GETARG_BYTEA_PP(0);
-	int			len = VARSIZE_ANY_EXHDR(v);
-	int			cap = pg_b64_enc_len(len);
-	char	   *out = palloc(cap + 1);
-	int			n = pg_b64_encode(VARDATA_ANY(v), len, out, cap);
+	size_t		len = VARSIZE_ANY_EXHDR(v);
+	size_t		n = aff_b64_encoded_len(len);
+	char	   *out;
 
-	if (n < 0)
-		elog(ERROR, "could not encode affinity.model as base64");
+	if ((n == 0 && len > 0) || n >= MaxAllocSize)
+		ereport(ERROR,
+				(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
+				 errmsg("affinity.model value is too large for its text form"),
+				 errdetail("The value has %zu bytes; its base64 text would have %zu characters, over the 1 GB limit of a string.",
+						   len, n),
+				 errhint("Binary COPY carries it; a model of at most 720 MB has a text form.")));
+	out = palloc_extended(n + 1, MCXT_ALLOC_HUGE);
+	aff_b64_encode((const uint8 *) VARDATA_ANY(v), len, out);
 	out[n] = '\0';
 	PG_RETURN_CSTRING(out);
 }
 
 PG_FUNCTION_INFO_V1(model_recv);
 
+/* Binary receive: the bytes after the length word, checked as text input is. */
 Datum
 model_recv(PG_FUNCTION_ARGS)
 {
 	StringInfo	buf = (StringInfo) PG_GETARG_POINTER(0);
 	int			len = buf->len - buf->cursor;
-	const char *data = pq_getmsgbytes(buf, len);
-	bytea	   *v = model_from_bytes(data, len);
+	const char *data;
+	bytea	   *v;
 
+	check_model_size((uint64) len + VARHDRSZ, false);
+	data = pq_getmsgbytes(buf, len);
+	v = (bytea *) palloc_extended((Size) len + VARHDRSZ, MCXT_ALLOC_HUGE);
+	SET_VARSIZE(v, len + VARHDRSZ);
+	memcpy(VARDATA(v), data, len);
 	pq_getmsgend(buf);
+	model_accept(v);
 	PG_RETURN_POINTER(v);
 }
 

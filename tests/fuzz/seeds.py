@@ -24,6 +24,7 @@ the extension fits (selftest, run by every command).
 """
 
 import base64
+import hashlib
 import math
 import os
 import random
@@ -55,6 +56,7 @@ _off = 0
 for _name, _f in HEADER_FIELDS:
     OFFSET[_name] = _off
     _off += struct.calcsize("<" + _f)
+assert OFFSET["reserved"] == 208
 
 SECTION_FMT = "<IIQQ"           # kind, elem_size, offset, count
 SECTION_SIZE = 24
@@ -101,6 +103,18 @@ def text_key(data):
     h = (h * 0xFF51AFD7ED558CCD) & MASK
     h ^= h >> 33
     return h - (1 << 64) if h >= 1 << 63 else h
+
+
+DIGEST_AT = 208                 # content_digest: the first 32 bytes of "reserved"
+
+
+def model_digest(buf):
+    """The content digest (src/core/digest.c): SHA-256 of the value after the
+    length word, with the checksum and content_digest fields read as zeros."""
+    b = bytearray(buf[4:])
+    b[OFFSET["checksum"] - 4:OFFSET["checksum"] + 4] = b"\0" * 8
+    b[DIGEST_AT - 4:DIGEST_AT + 28] = b"\0" * 32
+    return hashlib.sha256(bytes(b)).digest()
 
 
 def model_checksum(buf):
@@ -161,7 +175,8 @@ class Model:
         h = dict(self.h)
         h.update(magic=b"AFMD", n_sections=len(present), total_size=off, checksum=0, fingerprint=0)
         tbytes = b"".join(struct.pack(SECTION_FMT, *t) for t in table)
-        hc = dict(h, varlena_word=0, fit_seconds=0.0, peak_memory=0)
+        hc = dict(h, varlena_word=0, fit_seconds=0.0, peak_memory=0,
+                  reserved=b"\0" * 32 + h["reserved"][32:])
         fp = aff_hash(pack_header(hc), fp)
         fp = aff_hash(tbytes, fp)
         h["fingerprint"] = fp
@@ -178,6 +193,10 @@ def pack_header(h):
 
 
 def fix_checksum(buf):
+    """Recompute the checksum, and the content digest first when one is set
+    (a value without one, as 1.1 wrote, gets none)."""
+    if any(buf[DIGEST_AT:DIGEST_AT + 32]):
+        buf[DIGEST_AT:DIGEST_AT + 32] = model_digest(buf)
     struct.pack_into("<Q", buf, OFFSET["checksum"], model_checksum(buf))
     return buf
 

@@ -1,0 +1,64 @@
+/*
+ * digest.h
+ *		SHA-256 (FIPS 180-4), the content digest of a model value, and a
+ *		base64 codec (RFC 4648, standard alphabet with padding) over size_t.
+ *
+ * The content digest names a value in the serving cache: unlike the
+ * checksum (a fast hash that detects damage), a value with a chosen digest
+ * cannot be made, so two values with equal digests have equal content.
+ */
+#ifndef AFF_DIGEST_H
+#define AFF_DIGEST_H
+
+#include "aff_core.h"
+
+#define AFF_SHA256_BYTES	32
+
+typedef struct AffSha256
+{
+	uint32_t	state[8];
+	uint64_t	length;			/* bytes hashed so far */
+	uint8_t		block[64];
+	size_t		used;			/* bytes waiting in block */
+} AffSha256;
+
+extern void aff_sha256_init(AffSha256 *s);
+extern void aff_sha256_update(AffSha256 *s, const void *data, size_t len);
+extern void aff_sha256_final(AffSha256 *s, uint8_t out[AFF_SHA256_BYTES]);
+extern void aff_sha256(const void *data, size_t len, uint8_t out[AFF_SHA256_BYTES]);
+
+/*
+ * The content digest of a model value of len bytes (len >= the header):
+ * SHA-256 of every byte after the length word, with the checksum and the
+ * content_digest fields taken as zero.
+ */
+extern void aff_model_digest(const uint8_t *buf, uint64_t len,
+							 uint8_t out[AFF_SHA256_BYTES]);
+
+/* 1 when the value's content_digest field is all zero (not set). */
+extern int	aff_model_digest_unset(const uint8_t *buf);
+
+/*
+ * Write the content digest into the value's header and recompute the
+ * checksum.  The fingerprint is left alone.
+ */
+extern void aff_model_seal(uint8_t *buf, uint64_t len);
+
+/* Characters of the base64 form of n bytes, or 0 when that overflows size_t. */
+extern size_t aff_b64_encoded_len(size_t n);
+
+/* Encode n bytes into out (aff_b64_encoded_len(n) bytes, no terminator). */
+extern void aff_b64_encode(const uint8_t *in, size_t n, char *out);
+
+/* Upper bound of the bytes that n characters of base64 decode to. */
+extern size_t aff_b64_decoded_max(size_t n);
+
+/*
+ * Decode n characters of base64 into out (room for aff_b64_decoded_max(n)
+ * bytes), skipping ASCII white space.  Returns the byte count, or -1 on a
+ * character outside the alphabet, bad padding or a truncated quantum; then
+ * *bad_at is the offset of the offending character.
+ */
+extern int64_t aff_b64_decode(const char *in, size_t n, uint8_t *out, size_t *bad_at);
+
+#endif							/* AFF_DIGEST_H */
