@@ -5,8 +5,8 @@ expects the libpq environment (PGHOST, PGPORT, PGUSER, PGDATABASE) of a database
 extension created.
 
 Steps:
-  1. load the Online Retail CSV (tests/_common.py) and clean it in SQL as the Online Retail
-     check does (tests/check_online_retail.py);
+  1. load the Online Retail CSV and clean it with tests/online_retail.sql (through
+     tests/_common.py), the same SQL the Online Retail checks use;
   2. split in time: fit on purchases up to 2011-07-31, hold out each returning customer's
      purchases of August and September 2011;
   3. fit the whole grid of methods and options in one statement (a grid table CROSS JOINed with
@@ -37,7 +37,7 @@ import psycopg2
 BENCH_DIR = os.path.dirname(os.path.abspath(__file__))
 REPO_DIR = os.path.dirname(BENCH_DIR)
 sys.path.insert(0, os.path.join(REPO_DIR, "tests"))
-import _common as C  # noqa: E402  (data lookup and CSV loading shared with the checks)
+import _common as C  # noqa: E402  (data lookup, loading and cleaning shared with the checks)
 
 TRAIN_END = "2011-08-01"    # training: bought_at < this, i.e. up to 2011-07-31
 TEST_END = "2011-10-01"     # held out: August and September 2011
@@ -133,34 +133,11 @@ def as_json(v):
 # --------------------------------------------------------------------------------------------
 # Data
 
-CLEAN_SQL = """
-CREATE TABLE purchases AS
-SELECT ("CustomerID"::numeric)::bigint AS customer_id,
-       "StockCode"                     AS stock_code,
-       "Quantity"::integer             AS quantity,
-       "InvoiceDate"::timestamp        AS bought_at
-  FROM raw
- WHERE "InvoiceNo" NOT LIKE 'C%'                 -- cancellations
-   AND "Quantity"::integer > 0
-   AND coalesce(btrim("CustomerID"), '') <> ''    -- guest orders
-   AND "StockCode" ~ '^[0-9]{5}'                  -- products only: no postage, fees, adjustments
-"""
-
-
 def prepare(db, facts):
     t0 = time.perf_counter()
     facts["data_file"] = os.path.basename(C.online_retail_path())
-    facts["rows_loaded"] = C.load_online_retail(db.cur, "raw")
-    db.run(CLEAN_SQL)
-    db.run("DROP TABLE raw")
-    db.run("""CREATE TABLE products AS
-              SELECT stock_code, row_number() OVER (ORDER BY stock_code)::bigint AS item_id
-                FROM (SELECT DISTINCT stock_code FROM purchases) s""")
-    db.run("""CREATE TABLE lines AS
-              SELECT p.customer_id AS user_id, d.item_id, p.quantity, p.bought_at
-                FROM purchases p JOIN products d USING (stock_code)""")
-    db.run("CREATE INDEX ON lines (bought_at)")
-    db.run("ANALYZE lines")
+    # tables purchases, products (stock code -> item_id) and lines, by tests/online_retail.sql
+    facts["rows_loaded"] = C.clean_online_retail(db.cur)
     n, u, i, lo, hi = db.rows("SELECT count(*), count(DISTINCT user_id), count(DISTINCT item_id),"
                               " min(bought_at)::date, max(bought_at)::date FROM lines")[0]
     facts["clean"] = {"lines": n, "customers": u, "items": i, "first": str(lo), "last": str(hi)}
@@ -178,11 +155,9 @@ SELECT h.user_id, h.item_id FROM heldout{s} h
 
 def split(db, suffix, train_end, test_end):
     """train<suffix>(user_id, item_id, weight) and heldout<suffix>(user_id, item_id)."""
-    # weight of a (customer, item) pair: the number of purchase lines (see docs/quality.md)
-    db.run("""CREATE TABLE train%s AS
-              SELECT user_id, item_id, count(*)::real AS weight
-                FROM lines WHERE bought_at < %%s GROUP BY user_id, item_id""" % suffix,
-           (train_end,))
+    # weight of a (customer, item) pair: the number of purchase lines (see docs/quality.md),
+    # from retail_weights() of tests/online_retail.sql
+    C.retail_train(db.cur, "train" + suffix, train_end, "lines")
     db.run("CREATE UNIQUE INDEX ON train%s (user_id, item_id)" % suffix)
     db.run("CREATE INDEX ON train%s (item_id)" % suffix)
     db.run("ANALYZE train%s" % suffix)
@@ -553,7 +528,7 @@ def write_report(path, png_name, F):
       "`../shared/data` beside the checkout) and never part of the repository. %s lines were "
       "loaded with COPY." % (F["data_file"], n(F["rows_loaded"])))
     w("")
-    w("**Cleaning** (as in `tests/check_online_retail.py`): cancellations (invoice numbers "
+    w("**Cleaning** (`tests/online_retail.sql`, the same SQL as the checks): cancellations (invoice numbers "
       "starting with C) and lines without a positive quantity dropped, guest orders (no "
       "customer id) dropped, and only product stock codes kept (five leading digits; postage, "
       "carriage, fees and manual adjustments are not products). Left: %s purchase lines of %s "

@@ -43,8 +43,27 @@ FROM fit_models,
      jsonb_array_elements(affinity.describe(model)->'loss') WITH ORDINALITY p(value, n)
 WHERE l.n = p.n + 1;
 
--- duplicates are summed: user 1's weight for an item it bought twice
-SELECT affinity.score(model, 1, 1) IS NOT NULL AS known FROM fit_models;
+-- duplicates are summed: the fit of fit_input (users 1-3 have every pair
+-- twice) has exactly the factors of a fit of the same rows summed per pair
+-- beforehand, and not those of the rows with their largest weight kept
+CREATE TABLE fit_summed AS SELECT
+  (SELECT affinity.fit(user_id, item_id, w, '{"factors": 8, "iterations": 6, "threads": 1}')
+     FROM (SELECT user_id, item_id, sum(weight) AS w FROM fit_input
+            WHERE user_id IS NOT NULL AND item_id IS NOT NULL AND weight <> 0
+            GROUP BY 1, 2) s) AS summed,
+  (SELECT affinity.fit(user_id, item_id, w, '{"factors": 8, "iterations": 6, "threads": 1}')
+     FROM (SELECT user_id, item_id, max(weight) AS w FROM fit_input
+            WHERE user_id IS NOT NULL AND item_id IS NOT NULL AND weight <> 0
+            GROUP BY 1, 2) s) AS kept_max;
+SELECT (SELECT array_agg(t.vector ORDER BY t.user_id) FROM fit_models, affinity.user_vectors(model) t)
+     = (SELECT array_agg(t.vector ORDER BY t.user_id) FROM fit_summed, affinity.user_vectors(summed) t)
+       AS users_as_summed,
+       (SELECT array_agg(t.vector ORDER BY t.item_id) FROM fit_models, affinity.item_vectors(model) t)
+     = (SELECT array_agg(t.vector ORDER BY t.item_id) FROM fit_summed, affinity.item_vectors(summed) t)
+       AS items_as_summed,
+       (SELECT array_agg(t.vector ORDER BY t.user_id) FROM fit_models, affinity.user_vectors(model) t)
+     = (SELECT array_agg(t.vector ORDER BY t.user_id) FROM fit_summed, affinity.user_vectors(kept_max) t)
+       AS users_as_max_kept;
 
 -- determinism: same rows, options and seed give the same model content
 SELECT a = b AS same_fingerprint FROM
@@ -57,15 +76,6 @@ SELECT a <> b AS other_seed_differs FROM
           '{"factors": 8, "iterations": 4, "threads": 1}'))->>'fingerprint' AS a FROM fit_buys) x,
   (SELECT affinity.describe(affinity.fit(user_id, item_id, weight,
           '{"factors": 8, "iterations": 4, "threads": 1, "seed": 7}'))->>'fingerprint' AS b FROM fit_buys) y;
-
--- the thread count does not change the factors (each row is solved alone)
-SELECT bool_and(a.vector = b.vector) AS threads_agree FROM
-  (SELECT (affinity.user_vectors(m)).* FROM
-     (SELECT affinity.fit(user_id, item_id, weight, '{"factors": 8, "iterations": 3, "threads": 1}') m FROM fit_buys) s) a
-  JOIN
-  (SELECT (affinity.user_vectors(m)).* FROM
-     (SELECT affinity.fit(user_id, item_id, weight, '{"factors": 8, "iterations": 3, "threads": 2}') m FROM fit_buys) s) b
-  USING (user_id);
 
 -- the exact solver
 SELECT affinity.describe(affinity.fit(user_id, item_id, weight,
@@ -152,3 +162,23 @@ ORDER BY a.aggfnoid::regprocedure::text;
 SELECT affinity.describe(affinity.fit(u, i, 1::real, '{"method": "popularity"}'))->'users' AS a,
        affinity.describe(affinity.fit(u, i, 1::real, '{"method": "popularity"}'))->'items' AS b
 FROM (VALUES (1::bigint, 10::bigint), (2, 11), (3, 12)) v(u, i);
+-- the thread count does not change the factors (each row is solved alone),
+-- at a size where threads share the work: fit_many's 3000 users and 300
+-- items are 47 and 5 blocks of 64 rows.  affinity.max_threads is raised so
+-- that 2 threads run even on a one-CPU machine; describe() records the count
+-- used (which blocks each thread took is not visible from SQL).
+SET affinity.max_threads = 2;
+CREATE TABLE fit_threads AS SELECT
+  affinity.fit(user_id, item_id, weight, '{"factors": 8, "iterations": 3, "threads": 1}') AS one,
+  affinity.fit(user_id, item_id, weight, '{"factors": 8, "iterations": 3, "threads": 2}') AS two
+FROM fit_many;
+RESET affinity.max_threads;
+SELECT affinity.describe(one)->'options'->'threads' AS threads_a,
+       affinity.describe(two)->'options'->'threads' AS threads_b,
+       ((affinity.describe(two)->>'users')::int + 63) / 64 AS user_blocks,
+       ((affinity.describe(two)->>'items')::int + 63) / 64 AS item_blocks
+FROM fit_threads;
+SELECT count(*) AS users, bool_and(a.vector = b.vector) AS user_vectors_agree
+FROM fit_threads, affinity.user_vectors(one) a JOIN affinity.user_vectors(two) b USING (user_id);
+SELECT count(*) AS items, bool_and(a.vector = b.vector) AS item_vectors_agree
+FROM fit_threads, affinity.item_vectors(one) a JOIN affinity.item_vectors(two) b USING (item_id);

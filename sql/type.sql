@@ -29,10 +29,11 @@ SELECT affinity.describe(model::text::affinity.model)->>'checksum'
 FROM type_models;
 SELECT model::text = model::text::affinity.model::text AS text_stable FROM type_models;
 
--- binary round trip through COPY (receive runs the same validation)
-COPY type_models TO '/tmp/affinity_regress_model.bin' WITH (FORMAT binary);
+-- binary round trip through COPY (receive runs the same validation); psql's
+-- \copy keeps the file on the client side, in pg_regress's results/ directory
+\copy type_models TO 'results/type_model.bin' WITH (FORMAT binary)
 CREATE TABLE type_models_back (model affinity.model);
-COPY type_models_back FROM '/tmp/affinity_regress_model.bin' WITH (FORMAT binary);
+\copy type_models_back FROM 'results/type_model.bin' WITH (FORMAT binary)
 SELECT a.model::text = b.model::text AS binary_round_trip
 FROM type_models a, type_models_back b;
 

@@ -171,6 +171,28 @@ def load_online_retail(cur, table):
     return cur.fetchone()[0]
 
 
+ONLINE_RETAIL_SQL = os.path.join(TESTS_DIR, "online_retail.sql")
+
+
+def clean_online_retail(cur):
+    """Load the Online Retail CSV into raw and clean it with tests/online_retail.sql,
+    the one cleaning shared by the checks and bench/quality: it leaves the tables
+    purchases, products and lines and the function retail_weights() in the first
+    schema of the search path.  Returns the number of rows loaded."""
+    loaded = load_online_retail(cur, "raw")
+    with open(ONLINE_RETAIL_SQL, encoding="utf-8") as f:
+        cur.execute(f.read())
+    return loaded
+
+
+def retail_train(cur, table, before, measure="lines"):
+    """Create table(user_id, item_id, weight): one row per (customer, item) bought
+    before the given time, weighted by retail_weights() of tests/online_retail.sql
+    ('lines' or 'quantity')."""
+    cur.execute("CREATE TABLE %s AS SELECT user_id, item_id, weight FROM retail_weights(%%s, %%s)"
+                % table, (before, measure))
+
+
 def random_interactions(seed, n_users, n_items, n_pairs, max_weight=5,
                         user_base=1000, item_base=50000, split_share=0.1):
     """Invent a sparse implicit-feedback matrix with numpy.

@@ -24,6 +24,9 @@ from _common import (Checker, connect, copy_rows, drop_schema, fresh_schema,
                      random_interactions)
 
 SCHEMA = "check_metrics"
+# |affinity - scikit-learn| of NDCG, MAP, precision and recall (all float64
+# means over 150 users): measured 0 to 2.2e-16; tolerance about 100x.
+METRIC_TOL = 3e-14
 
 
 def main():
@@ -75,16 +78,17 @@ def main():
         cur.execute("SELECT affinity.ranking_metrics(m.model, h.user_id, h.item_id, %s) FROM m, held h", (k,))
         got = cur.fetchone()[0]
         c.check(got["users"] == len(users), "k=%d: users evaluated" % k, "%d" % got["users"])
-        c.check(abs(got["ndcg"] - np.mean(ndcgs)) < 1e-6, "k=%d: NDCG equals sklearn ndcg_score" % k,
-                "affinity %.8f sklearn %.8f" % (got["ndcg"], np.mean(ndcgs)))
-        c.check(abs(got["precision"] - np.mean(precs)) < 1e-9 and abs(got["recall"] - np.mean(recs)) < 1e-9,
+        c.check(abs(got["ndcg"] - np.mean(ndcgs)) < METRIC_TOL, "k=%d: NDCG equals sklearn ndcg_score" % k,
+                "affinity %.8f sklearn %.8f diff %.1e" % (got["ndcg"], np.mean(ndcgs), abs(got["ndcg"] - np.mean(ndcgs))))
+        c.check(abs(got["precision"] - np.mean(precs)) < METRIC_TOL and abs(got["recall"] - np.mean(recs)) < METRIC_TOL,
                 "k=%d: precision and recall from the same rankings" % k,
-                "precision %.6f/%.6f recall %.6f/%.6f" % (got["precision"], np.mean(precs),
-                                                          got["recall"], np.mean(recs)))
+                "precision %.6f/%.6f recall %.6f/%.6f diff %.1e/%.1e"
+                % (got["precision"], np.mean(precs), got["recall"], np.mean(recs),
+                   abs(got["precision"] - np.mean(precs)), abs(got["recall"] - np.mean(recs))))
         if k == n_items:
-            c.check(abs(got["map"] - np.mean(aps)) < 1e-6,
+            c.check(abs(got["map"] - np.mean(aps)) < METRIC_TOL,
                     "k=all: MAP equals mean sklearn average_precision_score",
-                    "affinity %.8f sklearn %.8f" % (got["map"], np.mean(aps)))
+                    "affinity %.8f sklearn %.8f diff %.1e" % (got["map"], np.mean(aps), abs(got["map"] - np.mean(aps))))
     drop_schema(cur, SCHEMA)
     c.finish()
 

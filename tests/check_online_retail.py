@@ -58,49 +58,22 @@ MAX_FIT_SECONDS = 120
 # Koren, Volinsky 2008, section 4).  In the search above quantity was never
 # better than lines by more than noise and worse at alpha 5 (0.1019 vs 0.1085
 # at regularization 10, 0.1069 vs 0.1163 at 30).
+# Both are computed by retail_weights() in tests/online_retail.sql.
 WEIGHT = "lines"
-WEIGHT_SQL = {"lines": "count(*)::real", "quantity": "sum(quantity)::real"}
+WEIGHTS = ("lines", "quantity")
 
 
 def prepare(cur):
     t0 = time.time()
-    loaded = C.load_online_retail(cur, "raw")
-    print("rows loaded: %d (%.1f s)" % (loaded, time.time() - t0))
-    # Cleaning: drop cancellations (invoice numbers starting with C), lines
-    # with no positive quantity, guest orders (no CustomerID), and the
-    # non-product codes (postage, carriage, manual adjustments, bank charges,
-    # fees): product stock codes start with five digits, these do not.
-    cur.execute("""
-        CREATE TABLE purchases AS
-        SELECT ("CustomerID"::numeric)::bigint AS customer_id,
-               "StockCode" AS stock_code,
-               "Quantity"::integer AS quantity,
-               "InvoiceDate"::timestamp AS bought_at
-          FROM raw
-         WHERE "InvoiceNo" NOT LIKE 'C%%'
-           AND "Quantity"::integer > 0
-           AND coalesce(btrim("CustomerID"), '') <> ''
-           AND "StockCode" ~ '^[0-9]{5}'""")
-    cur.execute("DROP TABLE raw")
-    # dense bigint numbering of the text stock codes
-    cur.execute("""
-        CREATE TABLE products AS
-        SELECT stock_code, row_number() OVER (ORDER BY stock_code)::bigint AS item_id
-          FROM (SELECT DISTINCT stock_code FROM purchases) s""")
-    cur.execute("CREATE UNIQUE INDEX ON products (stock_code)")
-    cur.execute("""
-        CREATE TABLE lines AS
-        SELECT p.customer_id AS user_id, d.item_id, p.quantity, p.bought_at
-          FROM purchases p JOIN products d USING (stock_code)""")
+    # load and clean with the SQL shared with bench/quality (tests/online_retail.sql):
+    # tables purchases, products (stock code -> item_id) and lines
+    loaded = C.clean_online_retail(cur)
+    print("rows loaded: %d (loaded and cleaned in %.1f s)" % (loaded, time.time() - t0))
     cur.execute("SELECT count(*), count(DISTINCT user_id), count(DISTINCT item_id) FROM lines")
     n, users, items = cur.fetchone()
     print("after cleaning: %d purchase lines, %d customers, %d items" % (n, users, items))
-    for w, expr in WEIGHT_SQL.items():
-        cur.execute("""
-            CREATE TABLE train_%s AS
-            SELECT user_id, item_id, %s AS weight
-              FROM lines WHERE bought_at < %%s GROUP BY user_id, item_id""" % (w, expr),
-                    (TRAIN_END,))
+    for w in WEIGHTS:
+        C.retail_train(cur, "train_" + w, TRAIN_END, w)
         cur.execute("CREATE UNIQUE INDEX ON train_%s (user_id, item_id)" % w)
         cur.execute("CREATE INDEX ON train_%s (item_id)" % w)
         cur.execute("ANALYZE train_%s" % w)
@@ -188,7 +161,7 @@ def main():
     ck.check(test_users >= 500, "enough held-out users to compare", "%d" % test_users)
 
     results = {}
-    for w in WEIGHT_SQL:
+    for w in WEIGHTS:
         d, wall = fit(cur, "m_als_" + w, "train_" + w, ALS_OPTIONS)
         r, rmin, short, seen = evaluate(cur, "m_als_" + w, "train_" + w)
         results[w] = r

@@ -21,6 +21,9 @@ SCHEMA = "check_reasons"
 LAMBDA = 0.5
 ALPHA = 4.0
 EPS = 1.0
+# Relative errors against numpy, measured: contributions 1.1e-7, their sum
+# vs y_i . x_u 2.2e-7, fold-in 1.5e-7; the tolerance is about 100x the largest.
+TOL = 2e-5
 
 
 def main():
@@ -70,12 +73,12 @@ def main():
             worst_fold = max(worst_fold, abs(fold[item_ids[i]] - total) / max(1.0, abs(total)))
             checked += 1
     c.check(checked > 50, "pairs checked", "%d (user, item) pairs" % checked)
-    c.check(worst_contrib < 1e-4, "each contribution equals c_uj y_i^T W^u y_j (numpy)",
-            "max relative error %.2e (tol 1e-4)" % worst_contrib)
-    c.check(worst_sum < 1e-4, "contributions add up to y_i . x_u for the exactly solved x_u",
-            "max relative error %.2e (tol 1e-4)" % worst_sum)
-    c.check(worst_fold < 1e-4, "fold-in of the user's history scores with the same x_u",
-            "max relative error %.2e (tol 1e-4)" % worst_fold)
+    c.check(worst_contrib < TOL, "each contribution equals c_uj y_i^T W^u y_j (numpy)",
+            "max relative error %.2e (tol %.0e)" % (worst_contrib, TOL))
+    c.check(worst_sum < TOL, "contributions add up to y_i . x_u for the exactly solved x_u",
+            "max relative error %.2e (tol %.0e)" % (worst_sum, TOL))
+    c.check(worst_fold < TOL, "fold-in of the user's history scores with the same x_u",
+            "max relative error %.2e (tol %.0e)" % (worst_fold, TOL))
     drop_schema(cur, SCHEMA)
     c.finish()
 
