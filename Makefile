@@ -8,6 +8,7 @@ OBJS = \
 	src/core/als.o \
 	src/core/topk.o \
 	src/core/model_format.o \
+	src/core/text_key.o \
 	src/core/ease.o \
 	src/core/knn.o \
 	src/pg/guc.o \
