@@ -54,14 +54,60 @@ typedef struct FitState
 	TextDict   *item_texts;
 	uint64		text_hash_key[2];	/* the texts' hash key, when text_keys */
 	Size		text_memory;	/* bytes the two dictionaries hold */
+	Size		counted;		/* bytes of cxt in held_total */
+	Size		wire_bytes;		/* size of the serialized form it came from */
+	bool		serialized;		/* rows handed on by serialfn, and freed */
 	bytea	   *result;			/* the model, once finalized */
 } FitState;
+
+/*
+ * Bytes held by every live fit state of this backend (a parallel leader has
+ * its own partial state and the states it combines), and their peak since
+ * the backend last held none: the part of a fit's peak that comes before
+ * its final step.  A reset callback on each state's context takes its
+ * bytes out when PostgreSQL frees it.
+ */
+static Size held_total = 0;
+static double held_peak = 0;
+
+/*
+ * Serialized states this backend has read (a parallel leader): each came
+ * through a tuple queue whose receive buffer keeps a copy of the largest
+ * message until the Gather node shuts down, after the fit.  Outside our
+ * contexts, but memory the fit makes the backend hold.
+ */
+static double held_wire = 0;
 
 /* Re-keying gives up after this many colliding keys (each is ~n^2/2^65). */
 #define MAX_REKEY_TRIES 8
 
 static void check_memory(const FitState *st, double n_rows, double users,
 						 double items, bool with_factors);
+static void free_text_dicts(FitState *st);
+
+/*
+ * Bring st's bytes in held_total up to date; extra is memory held beside
+ * the states for the moment (a serialized state being read).
+ */
+static void
+account(FitState *st, double extra)
+{
+	Size		now = MemoryContextMemAllocated(st->cxt, true);
+
+	held_total = held_total - st->counted + now;
+	st->counted = now;
+	held_peak = Max(held_peak, (double) held_total + held_wire + extra);
+}
+
+/* Reset callback of a state's context: its bytes are gone. */
+static void
+forget_state(void *arg)
+{
+	FitState   *st = arg;
+
+	held_total -= Min(held_total, st->counted);
+	st->counted = 0;
+}
 
 /* Grow the row array geometrically; guard the byte count first. */
 static void
@@ -91,6 +137,7 @@ reserve_rows(FitState *st, int64 need)
 	else
 		st->rows = repalloc_huge(st->rows, bytes);
 	st->cap_rows = cap;
+	account(st, 0);
 }
 
 /*
@@ -103,8 +150,18 @@ fit_state_alloc(MemoryContext aggcxt)
 	MemoryContext cxt = AllocSetContextCreate(aggcxt, "affinity.fit state",
 											  ALLOCSET_DEFAULT_SIZES);
 	FitState   *st = MemoryContextAllocZero(cxt, sizeof(FitState));
+	MemoryContextCallback *cb = MemoryContextAlloc(cxt, sizeof(MemoryContextCallback));
 
 	st->cxt = cxt;
+	if (held_total == 0)
+	{
+		held_peak = 0;			/* a new fit (or fits) in this backend */
+		held_wire = 0;
+	}
+	cb->func = forget_state;
+	cb->arg = st;
+	MemoryContextRegisterResetCallback(cxt, cb);
+	account(st, 0);
 	return st;
 }
 
@@ -235,6 +292,7 @@ static void
 count_text_memory(FitState *st)
 {
 	st->text_memory = text_dict_memory(st->user_texts) + text_dict_memory(st->item_texts);
+	account(st, 0);
 }
 
 static void
@@ -261,6 +319,8 @@ take_row(FunctionCallInfo fcinfo, FitState **stp, float4 *w)
 		elog(ERROR, "affinity.fit transition called in non-aggregate context");
 	st = PG_ARGISNULL(0) ? fit_state_new(fcinfo, aggcxt) : (FitState *) PG_GETARG_POINTER(0);
 	*stp = st;
+	if (st->serialized)
+		elog(ERROR, "affinity.fit state used after it was serialized");
 	st->rows_read++;
 	if (PG_ARGISNULL(1) || PG_ARGISNULL(2) || PG_ARGISNULL(3))
 	{
@@ -436,6 +496,7 @@ affinity_fit_combinefn(PG_FUNCTION_ARGS)
 			merge_counts(b, a);
 			fit_state_free(a);
 		}
+		account(b, (double) b->wire_bytes);
 		check_growing(b);
 		PG_RETURN_POINTER(b);
 	}
@@ -443,6 +504,8 @@ affinity_fit_combinefn(PG_FUNCTION_ARGS)
 	if (b->text_keys)
 		merge_texts(a, b);
 	append_rows(a, b->rows, b->n_rows);
+	/* the peak: both states and b's serialized form, still in memory */
+	account(a, (double) b->wire_bytes);
 	fit_state_free(b);
 	check_growing(a);
 	PG_RETURN_POINTER(a);
@@ -456,7 +519,12 @@ affinity_fit_serialfn(PG_FUNCTION_ARGS)
 {
 	FitState   *st = (FitState *) PG_GETARG_POINTER(0);
 	StringInfoData buf;
-	double		bytes = (double) st->n_rows * sizeof(AffTriple) + 1024 +
+	bytea	   *out;
+	double		bytes;
+
+	if (st->serialized)
+		elog(ERROR, "affinity.fit state serialized twice");
+	bytes = (double) st->n_rows * sizeof(AffTriple) + 1024 +
 		(st->text_keys ? (double) (st->user_texts->bytes + st->item_texts->bytes) +
 		 4.0 * (text_dict_count(st->user_texts) + text_dict_count(st->item_texts)) : 0);
 
@@ -485,7 +553,23 @@ affinity_fit_serialfn(PG_FUNCTION_ARGS)
 		text_dict_serialize(&buf, st->user_texts);
 		text_dict_serialize(&buf, st->item_texts);
 	}
-	PG_RETURN_BYTEA_P(pq_endtypsend(&buf));
+	out = pq_endtypsend(&buf);
+	account(st, (double) VARSIZE(out));
+	/*
+	 * A serialized partial state is never used again (the leader combines
+	 * its serialized form): free its rows and texts now rather than when
+	 * the executor shuts the node down, so that the leader's own share is
+	 * not held beside the states it combines.
+	 */
+	st->serialized = true;
+	if (st->rows != NULL)
+		pfree(st->rows);
+	st->rows = NULL;
+	st->n_rows = st->cap_rows = 0;
+	if (st->text_keys)
+		free_text_dicts(st);
+	account(st, 0);
+	PG_RETURN_BYTEA_P(out);
 }
 
 PG_FUNCTION_INFO_V1(affinity_fit_deserialfn);
@@ -533,6 +617,9 @@ affinity_fit_deserialfn(PG_FUNCTION_ARGS)
 		count_text_memory(st);
 	}
 	pq_getmsgend(&buf);
+	st->wire_bytes = VARSIZE_ANY(b);
+	held_wire += (double) st->wire_bytes;	/* the queue's buffer */
+	account(st, (double) st->wire_bytes);	/* and the tuple read from it */
 	PG_RETURN_POINTER(st);
 }
 
@@ -753,10 +840,11 @@ run_als(const FitState *st, const AffMatrix *m, AffModelParts *parts,
 }
 
 /*
- * The fit's memory as PostgreSQL accounts it: bytes allocated in the
- * state's context (rows, text dictionaries, later the model) and in the
- * fit's work context (matrix, scratch, factors, sections), with the
- * highest sum seen.  The engine's allocator samples it after every
+ * The fit's memory as PostgreSQL accounts it: bytes allocated in the fit
+ * states of the backend (rows, text dictionaries, later the model: see
+ * held_total) and in the fit's work context (matrix, scratch, factors,
+ * sections), with the highest sum seen, starting from the peak of
+ * collecting and combining the rows.  The engine's allocator samples it after every
  * allocation, so transient scratch (the radix sort's second buffer) is in
  * the peak; large allocations are blocks of their own that are returned to
  * the system when freed, so the sum follows what the process holds.
@@ -764,7 +852,7 @@ run_als(const FitState *st, const AffMatrix *m, AffModelParts *parts,
 typedef struct FitMeter
 {
 	AffAllocator inner;			/* the work context's allocator */
-	MemoryContext state_cxt;
+	FitState   *st;
 	MemoryContext work;
 	double		peak;
 } FitMeter;
@@ -772,8 +860,10 @@ typedef struct FitMeter
 static double
 meter_sample(FitMeter *fm)
 {
-	double		now = (double) MemoryContextMemAllocated(fm->state_cxt, true) +
-		(double) MemoryContextMemAllocated(fm->work, true);
+	double		now;
+
+	account(fm->st, 0);
+	now = (double) held_total + held_wire + (double) MemoryContextMemAllocated(fm->work, true);
 
 	fm->peak = Max(fm->peak, now);
 	return now;
@@ -805,9 +895,9 @@ metered_allocator(FitMeter *fm, FitState *st, MemoryContext work)
 	AffAllocator a;
 
 	fm->inner = context_allocator(work);
-	fm->state_cxt = st->cxt;
+	fm->st = st;
 	fm->work = work;
-	fm->peak = 0;
+	fm->peak = held_peak;		/* collecting and combining the rows */
 	meter_sample(fm);
 	a.alloc = metered_alloc;
 	a.release = metered_release;
@@ -921,8 +1011,8 @@ fit_model(FitState *st)
 	parts.h.fit_seconds = seconds_since(t0);
 	{
 		uint64		model_bytes = 0;
-		double		state_now = (double) MemoryContextMemAllocated(st->cxt, true);
 		double		now = meter_sample(&meter);
+		double		state_now = (double) held_total + held_wire;
 
 		/*
 		 * Still to come: the model beside the work context, then, once the
