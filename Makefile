@@ -10,6 +10,7 @@ OBJS = \
 	src/core/model_format.o \
 	src/core/digest.o \
 	src/core/blas_pool.o \
+	src/core/text_key.o \
 	src/core/ease.o \
 	src/core/knn.o \
 	src/pg/guc.o \

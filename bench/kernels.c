@@ -45,6 +45,7 @@ main(int argc, char **argv)
 	AffAllocator a = {m_alloc, m_release, NULL};
 	AffError	err;
 	AffMatrix	m;
+	AffBuildParams bp;
 	AffAls		als;
 	AffAlsParams p;
 	AffTriple  *rows;
@@ -90,7 +91,14 @@ main(int argc, char **argv)
 		rows[i].item = (int64_t) (uu * uu * (double) n_items);
 		rows[i].weight = 1.0f;
 	}
-	if (aff_matrix_build(rows, nnz, 1, 1, &a, &m, &err) != AFF_OK ||
+	/* the build's index key may be fixed here: these ids are not hostile */
+	bp.min_user = 1;
+	bp.min_item = 1;
+	bp.index_key[0] = 0x243f6a8885a308d3ULL;
+	bp.index_key[1] = 0x13198a2e03707344ULL;
+	bp.poll = NULL;
+	bp.poll_arg = NULL;
+	if (aff_matrix_build(rows, nnz, &bp, &a, &m, &err) != AFF_OK ||
 		aff_als_init(&als, &m, &p, &a, &err) != AFF_OK)
 	{
 		fprintf(stderr, "%s: %s\n", err.msg, err.detail);

@@ -60,6 +60,7 @@ fi
 bin=$tmp/fuzz_model
 if ! "$cc" -g -O1 -fsanitize=fuzzer,address,undefined -fno-sanitize-recover=undefined \
 	-I"$repo/src/core" "$repo/tests/fuzz/fuzz_model.c" "$repo/src/core/model_format.c" \
+	"$repo/src/core/text_key.c" \
 	"$repo/src/core/util.c" -lm -o "$bin" >"$tmp/build.log" 2>&1; then
 	cat "$tmp/build.log"
 	echo "FAILED: the fuzz target does not build with $cc"

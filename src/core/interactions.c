@@ -7,6 +7,13 @@
  * not needed afterwards).  Filtering is a single pass: a user or item is
  * dropped when it has fewer distinct partners than its minimum in the full
  * input; users and items left with no interaction are dropped too.
+ *
+ * Every pass is O(n) per radix byte or per element, whatever the keys: the
+ * sorts are radix sorts, and the table that maps item keys to indices
+ * hashes with SipHash-1-3 under a key drawn for each build, so item ids
+ * cannot be chosen to pile up in its slots.  Each pass calls the caller's
+ * poll function every POLL_EVERY elements, so a cancel stops the build
+ * within milliseconds (AFF_ERR_CANCELLED).
  */
 #include "interactions.h"
 
@@ -14,29 +21,28 @@
 #include <stdlib.h>
 #include <string.h>
 
-static int
-cmp_triple(const void *a, const void *b)
-{
-	const AffTriple *x = a;
-	const AffTriple *y = b;
+#include "text_key.h"
 
-	if (x->user != y->user)
-		return x->user < y->user ? -1 : 1;
-	if (x->item != y->item)
-		return x->item < y->item ? -1 : 1;
-	/* equal keys in weight order: duplicates are summed in a fixed order */
-	if (x->weight != y->weight)
-		return x->weight < y->weight ? -1 : 1;
-	return 0;
+/* Elements between two polls: about a millisecond of the slowest pass. */
+#define POLL_EVERY		((int64_t) 1 << 16)
+
+/* True when the caller asks to stop; checked at every POLL_EVERY-th element. */
+static inline int
+stop_at(const AffBuildParams *p, int64_t i)
+{
+	return (i & (POLL_EVERY - 1)) == 0 && p->poll != NULL && p->poll(p->poll_arg);
 }
 
-static int
-cmp_int64(const void *a, const void *b)
+static AffStatus
+cancelled(AffError *err)
 {
-	int64_t		x = *(const int64_t *) a;
-	int64_t		y = *(const int64_t *) b;
+	return aff_fail(err, AFF_ERR_CANCELLED, "the interaction matrix build was cancelled");
+}
 
-	return x < y ? -1 : (x > y);
+static AffStatus
+no_memory(AffError *err)
+{
+	return aff_fail(err, AFF_ERR_NOMEM, "out of memory building the interaction matrix");
 }
 
 /* Index of key in the ascending array keys[0..n), or -1. */
@@ -61,26 +67,28 @@ aff_find_key(const int64_t *keys, int64_t n, int64_t key)
 /*
  * An open-addressing table from key to index into a sorted key array, so
  * that mapping every row's item to its index costs O(1) instead of a
- * binary search with a cache miss per step.
+ * binary search with a cache miss per step.  Slots come from a keyed hash
+ * (SipHash-1-3 under the build's random key): with an unkeyed mix, ids
+ * chosen to share a slot made the build quadratic.
  */
 typedef struct KeyIndex
 {
 	int64_t    *slot_key;
 	int32_t    *slot_idx;		/* -1: empty */
 	uint64_t	mask;
+	uint64_t	key[2];
 } KeyIndex;
 
 static inline uint64_t
-key_slot(int64_t key, uint64_t mask)
+key_slot(const KeyIndex *ki, int64_t key)
 {
-	uint64_t	h = (uint64_t) key * 0x9e3779b97f4a7c15ULL;
-
-	return (h ^ (h >> 29)) & mask;
+	return aff_siphash13_u64(ki->key, (uint64_t) key) & ki->mask;
 }
 
-/* Build the table for keys[0..n); returns 0 when out of memory. */
-static int
-key_index_build(KeyIndex *ki, const int64_t *keys, int64_t n, const AffAllocator *a)
+/* Build the table for keys[0..n). */
+static AffStatus
+key_index_build(KeyIndex *ki, const int64_t *keys, int64_t n,
+				const AffBuildParams *p, const AffAllocator *a, AffError *err)
 {
 	uint64_t	size = 16;
 	int64_t		i;
@@ -88,28 +96,32 @@ key_index_build(KeyIndex *ki, const int64_t *keys, int64_t n, const AffAllocator
 	while (size < (uint64_t) n * 2)
 		size <<= 1;
 	ki->mask = size - 1;
+	ki->key[0] = p->index_key[0];
+	ki->key[1] = p->index_key[1];
 	ki->slot_key = aff_alloc_array(a, size, sizeof(int64_t));
 	ki->slot_idx = aff_alloc_array(a, size, sizeof(int32_t));
 	if (!ki->slot_key || !ki->slot_idx)
-		return 0;
+		return no_memory(err);
 	memset(ki->slot_idx, 0xff, sizeof(int32_t) * size);
 	for (i = 0; i < n; i++)
 	{
-		uint64_t	s = key_slot(keys[i], ki->mask);
+		uint64_t	s = key_slot(ki, keys[i]);
 
+		if (stop_at(p, i))
+			return cancelled(err);
 		while (ki->slot_idx[s] >= 0)
 			s = (s + 1) & ki->mask;
 		ki->slot_key[s] = keys[i];
 		ki->slot_idx[s] = (int32_t) i;
 	}
-	return 1;
+	return AFF_OK;
 }
 
 /* Index of key (which must be in the table). */
 static inline int32_t
 key_index_find(const KeyIndex *ki, int64_t key)
 {
-	uint64_t	s = key_slot(key, ki->mask);
+	uint64_t	s = key_slot(ki, key);
 
 	while (ki->slot_idx[s] < 0 || ki->slot_key[s] != key)
 		s = (s + 1) & ki->mask;
@@ -156,7 +168,8 @@ int64_byte(const int64_t *k, int pass)
  * n elements of TYPE, BYTE(element pointer, pass) giving the pass's byte,
  * with tmp (n more elements) as the second buffer.  Passes whose byte is
  * the same for every element are skipped, so ids that fit in a few bytes
- * cost a few passes.  Stable and O(n) per pass.
+ * cost a few passes.  Stable and O(n) per pass.  The enclosing function
+ * returns 1 when the poll asks to stop (the data is then left unsorted).
  */
 #define RADIX_SORT_BODY(TYPE, PASSES, BYTE) \
 	do { \
@@ -171,7 +184,11 @@ int64_byte(const int64_t *k, int pass)
 			int			b; \
 			TYPE	   *t; \
 			for (i = 0; i < n; i++) \
+			{ \
+				if (stop_at(p, i)) \
+					return 1; \
 				count[BYTE(&src[i], pass)]++; \
+			} \
 			if (count[BYTE(&src[0], pass)] == n) \
 				continue; \
 			for (b = 0; b < 256; b++) \
@@ -181,98 +198,120 @@ int64_byte(const int64_t *k, int pass)
 				at += c; \
 			} \
 			for (i = 0; i < n; i++) \
+			{ \
+				if (stop_at(p, i)) \
+					return 1; \
 				dst[count[BYTE(&src[i], pass)]++] = src[i]; \
+			} \
 			t = src; \
 			src = dst; \
 			dst = t; \
 		} \
 		if (src != data) \
 			memcpy(data, src, sizeof(TYPE) * (size_t) n); \
+		return 0; \
 	} while (0)
 
 /* Rows by (user, item, weight); it replaces a comparison sort on the fit's hot path. */
-static void
-radix_sort_triples(AffTriple *data, AffTriple *tmp, int64_t n)
+static int
+radix_sort_triples(AffTriple *data, AffTriple *tmp, int64_t n, const AffBuildParams *p)
 {
 	RADIX_SORT_BODY(AffTriple, 20, triple_byte);
 }
 
 /* int64 keys, ascending. */
-static void
-radix_sort_int64(int64_t *data, int64_t *tmp, int64_t n)
+static int
+radix_sort_int64(int64_t *data, int64_t *tmp, int64_t n, const AffBuildParams *p)
 {
 	RADIX_SORT_BODY(int64_t, 8, int64_byte);
 }
 
 /*
- * Sort rows by (user, item) and sum duplicates; returns the distinct count.
- * tmp, when not NULL, is scratch for n rows (radix sort); without it the
- * rows are sorted by comparison.  Duplicates are ordered by weight so they
- * are summed in a fixed order.
+ * Sort rows by (user, item) and sum duplicates; *out gets the distinct
+ * count.  Duplicates are ordered by weight so they are summed in a fixed
+ * order.  Scratch for n rows comes from the allocator.
  */
-static int64_t
-merge_duplicates(AffTriple *rows, int64_t n, AffTriple *tmp)
+static AffStatus
+merge_duplicates(AffTriple *rows, int64_t n, int64_t *out, const AffBuildParams *p,
+				 const AffAllocator *a, AffError *err)
 {
-	int64_t		out = 0;
+	AffTriple  *tmp;
+	int64_t		kept = 0;
 	int64_t		i;
 
-	if (tmp != NULL && n > 0)
-		radix_sort_triples(rows, tmp, n);
-	else
-		qsort(rows, (size_t) n, sizeof(AffTriple), cmp_triple);
+	*out = 0;
+	if (n == 0)
+		return AFF_OK;
+	tmp = aff_alloc_array(a, (size_t) n, sizeof(AffTriple));
+	if (tmp == NULL)
+		return no_memory(err);
+	i = radix_sort_triples(rows, tmp, n, p);
+	aff_release(a, tmp);
+	if (i != 0)
+		return cancelled(err);
 	for (i = 0; i < n; i++)
 	{
-		if (out > 0 && rows[out - 1].user == rows[i].user &&
-			rows[out - 1].item == rows[i].item)
-			rows[out - 1].weight += rows[i].weight;
+		if (stop_at(p, i))
+			return cancelled(err);
+		if (kept > 0 && rows[kept - 1].user == rows[i].user &&
+			rows[kept - 1].item == rows[i].item)
+			rows[kept - 1].weight += rows[i].weight;
 		else
-			rows[out++] = rows[i];
+			rows[kept++] = rows[i];
 	}
-	return out;
+	*out = kept;
+	return AFF_OK;
 }
 
 /*
  * Count, for each distinct item, its distinct users; items[] receives the
- * sorted distinct item keys and counts[] their counts.  Returns the number
- * of distinct items.  items and counts must hold n entries.
+ * sorted distinct item keys and counts[] their counts, *n_items their
+ * number.  items and counts must hold n entries.
  */
-static int64_t
-count_items(const AffTriple *rows, int64_t n, int64_t *items, int64_t *counts)
+static AffStatus
+count_items(const AffTriple *rows, int64_t n, int64_t *items, int64_t *counts,
+			int64_t *n_items, const AffBuildParams *p, AffError *err)
 {
-	int64_t		n_items = 0;
+	int64_t		k = 0;
 	int64_t		i;
 
 	for (i = 0; i < n; i++)
 		items[i] = rows[i].item;
 	/* counts is free until the loop below: use it as the radix scratch */
-	if (n > 0)
-		radix_sort_int64(items, counts, n);
+	if (n > 0 && radix_sort_int64(items, counts, n, p) != 0)
+		return cancelled(err);
 	for (i = 0; i < n; i++)
 	{
-		if (n_items > 0 && items[n_items - 1] == items[i])
-			counts[n_items - 1]++;
+		if (stop_at(p, i))
+			return cancelled(err);
+		if (k > 0 && items[k - 1] == items[i])
+			counts[k - 1]++;
 		else
 		{
-			items[n_items] = items[i];
-			counts[n_items] = 1;
-			n_items++;
+			items[k] = items[i];
+			counts[k] = 1;
+			k++;
 		}
 	}
-	return n_items;
+	*n_items = k;
+	return AFF_OK;
 }
 
 /*
  * Drop rows of users and items below their minimum partner counts (a single
- * pass over the counts of the full input).  Compacts rows in place and
- * returns the number kept.
+ * pass over the counts of the full input).  Compacts rows in place; *kept
+ * gets the number kept.
  */
-static int64_t
-apply_minimums(AffTriple *rows, int64_t n, int min_user, int min_item,
-			   const int64_t *items, const int64_t *counts, int64_t n_items,
-			   AffMatrix *m)
+static AffStatus
+apply_minimums(AffTriple *rows, int64_t n, const int64_t *items,
+			   const int64_t *counts, int64_t n_items, int64_t *kept,
+			   const AffBuildParams *p, AffMatrix *m, AffError *err)
 {
+	int			min_user = p->min_user;
+	int			min_item = p->min_item;
 	int64_t		out = 0;
 	int64_t		start = 0;
+	int64_t		next_poll = 0;
 	int64_t		i;
 
 	for (i = 0; i < n_items; i++)
@@ -283,6 +322,12 @@ apply_minimums(AffTriple *rows, int64_t n, int min_user, int min_item,
 	{
 		int64_t		end = start;
 
+		if (start >= next_poll)
+		{
+			if (p->poll != NULL && p->poll(p->poll_arg))
+				return cancelled(err);
+			next_poll = start + POLL_EVERY;
+		}
 		while (end < n && rows[end].user == rows[start].user)
 			end++;
 		if (end - start < min_user)
@@ -310,24 +355,36 @@ apply_minimums(AffTriple *rows, int64_t n, int min_user, int min_item,
 		}
 		start = end;
 	}
-	return out;
+	*kept = out;
+	return AFF_OK;
 }
 
 /* Fill the by-item CSR as the transpose of the by-user CSR (counting sort). */
-static void
-transpose(AffMatrix *m)
+static AffStatus
+transpose(AffMatrix *m, const AffBuildParams *p, AffError *err)
 {
 	int64_t		u;
 	int64_t		j;
+	int64_t		next_poll = 0;
 
 	memset(m->col_ptr, 0, sizeof(int64_t) * (size_t) (m->n_items + 1));
 	for (j = 0; j < m->nnz; j++)
+	{
+		if (stop_at(p, j))
+			return cancelled(err);
 		m->col_ptr[m->row_idx[j] + 1]++;
+	}
 	for (j = 0; j < m->n_items; j++)
 		m->col_ptr[j + 1] += m->col_ptr[j];
 	/* row_ptr-ordered scan keeps user indices ascending within each column */
 	for (u = 0; u < m->n_users; u++)
 	{
+		if (m->row_ptr[u] >= next_poll)
+		{
+			if (p->poll != NULL && p->poll(p->poll_arg))
+				return cancelled(err);
+			next_poll = m->row_ptr[u] + POLL_EVERY;
+		}
 		for (j = m->row_ptr[u]; j < m->row_ptr[u + 1]; j++)
 		{
 			int32_t		i = m->row_idx[j];
@@ -340,6 +397,7 @@ transpose(AffMatrix *m)
 	for (j = m->n_items; j > 0; j--)
 		m->col_ptr[j] = m->col_ptr[j - 1];
 	m->col_ptr[0] = 0;
+	return AFF_OK;
 }
 
 static AffStatus
@@ -355,39 +413,20 @@ alloc_matrix(const AffAllocator *a, AffMatrix *m, AffError *err)
 	m->col_val = aff_alloc_array(a, (size_t) m->nnz, sizeof(float));
 	if (!m->user_keys || !m->item_keys || !m->row_ptr || !m->row_idx ||
 		!m->row_val || !m->col_ptr || !m->col_idx || !m->col_val)
-		return aff_fail(err, AFF_ERR_NOMEM, "out of memory building the interaction matrix");
+		return no_memory(err);
 	return AFF_OK;
 }
 
-/*
- * Build m from rows[0..n_rows).  rows is reordered and overwritten.  On
- * success m owns its arrays (free with aff_matrix_free).  An input that
- * ends up empty after filtering is AFF_ERR_INVALID.
- */
-AffStatus
-aff_matrix_build(AffTriple *rows, int64_t n_rows, int min_user, int min_item,
-				 const AffAllocator *a, AffMatrix *m, AffError *err)
+/* Summed weights must stay finite. */
+static AffStatus
+check_sums(const AffTriple *rows, int64_t n, const AffBuildParams *p, AffError *err)
 {
-	int64_t    *items;
-	int64_t    *counts;
-	int64_t		n_items;
-	int64_t		n;
 	int64_t		i;
-	int64_t		u;
-	AffStatus	st;
-	KeyIndex	ki = {NULL, NULL, 0};
 
-	memset(m, 0, sizeof(*m));
-	{
-		AffTriple  *tmp = aff_alloc_array(a, (size_t) n_rows, sizeof(AffTriple));
-
-		/* without scratch memory, fall back to a comparison sort */
-		n = merge_duplicates(rows, n_rows, tmp);
-		aff_release(a, tmp);
-	}
-	m->duplicates_summed = n_rows - n;
 	for (i = 0; i < n; i++)
 	{
+		if (stop_at(p, i))
+			return cancelled(err);
 		if (!isfinite(rows[i].weight))
 		{
 			aff_fail(err, AFF_ERR_INVALID, "summed weight is out of range");
@@ -395,68 +434,98 @@ aff_matrix_build(AffTriple *rows, int64_t n_rows, int min_user, int min_item,
 							  (long long) rows[i].user, (long long) rows[i].item);
 		}
 	}
+	return AFF_OK;
+}
 
-	items = aff_alloc_array(a, (size_t) n, sizeof(int64_t));
-	counts = aff_alloc_array(a, (size_t) n, sizeof(int64_t));
+/*
+ * Filter: drop users and items under their minimums; *n becomes the rows
+ * kept.  An input left empty is AFF_ERR_INVALID.
+ */
+static AffStatus
+filter_rows(AffTriple *rows, int64_t *n, const AffBuildParams *p,
+			const AffAllocator *a, AffMatrix *m, AffError *err)
+{
+	int64_t    *items = aff_alloc_array(a, (size_t) *n, sizeof(int64_t));
+	int64_t    *counts = aff_alloc_array(a, (size_t) *n, sizeof(int64_t));
+	int64_t		n_items = 0;
+	AffStatus	st;
+
 	if (!items || !counts)
-	{
-		aff_release(a, items);
-		aff_release(a, counts);
-		return aff_fail(err, AFF_ERR_NOMEM, "out of memory building the interaction matrix");
-	}
-	n_items = count_items(rows, n, items, counts);
-	n = apply_minimums(rows, n, min_user, min_item, items, counts, n_items, m);
+		st = no_memory(err);
+	else
+		st = count_items(rows, *n, items, counts, &n_items, p, err);
+	if (st == AFF_OK)
+		st = apply_minimums(rows, *n, items, counts, n_items, n, p, m, err);
 	aff_release(a, counts);
 	aff_release(a, items);
-
-	if (n == 0)
+	if (st == AFF_OK && *n == 0)
 	{
 		aff_fail(err, AFF_ERR_INVALID,
 				 "no interactions are left after the minimum-interaction filters");
 		return aff_detail(err, "min_user_interactions is %d and min_item_interactions is %d; %lld users and %lld items were dropped.",
-						  min_user, min_item, (long long) m->dropped_users,
+						  p->min_user, p->min_item, (long long) m->dropped_users,
 						  (long long) m->dropped_items);
 	}
+	return st;
+}
 
-	/* distinct users and items of the kept rows */
-	m->nnz = n;
-	m->n_users = 0;
-	for (i = 0; i < n; i++)
-		if (i == 0 || rows[i].user != rows[i - 1].user)
-			m->n_users++;
-	items = aff_alloc_array(a, (size_t) n, sizeof(int64_t));
-	if (!items)
-		return aff_fail(err, AFF_ERR_NOMEM, "out of memory building the interaction matrix");
-	for (i = 0; i < n; i++)
-		items[i] = rows[i].item;
+/*
+ * The distinct item keys of the kept rows, ascending, into *items (an
+ * allocation of n keys, the first m->n_items used).
+ */
+static AffStatus
+distinct_items(const AffTriple *rows, int64_t n, int64_t **items,
+			   const AffBuildParams *p, const AffAllocator *a, AffMatrix *m,
+			   AffError *err)
+{
+	int64_t    *k = aff_alloc_array(a, (size_t) n, sizeof(int64_t));
+	int64_t    *tmp = aff_alloc_array(a, (size_t) n, sizeof(int64_t));
+	int64_t		i;
+	int			stopped;
+
+	*items = k;
+	if (!k || !tmp)
 	{
-		int64_t    *tmp = aff_alloc_array(a, (size_t) n, sizeof(int64_t));
-
-		if (tmp != NULL)
-			radix_sort_int64(items, tmp, n);
-		else
-			qsort(items, (size_t) n, sizeof(int64_t), cmp_int64);
 		aff_release(a, tmp);
+		return no_memory(err);
 	}
+	for (i = 0; i < n; i++)
+		k[i] = rows[i].item;
+	stopped = radix_sort_int64(k, tmp, n, p);
+	aff_release(a, tmp);
+	if (stopped)
+		return cancelled(err);
 	m->n_items = 0;
 	for (i = 0; i < n; i++)
-		if (i == 0 || items[i] != items[i - 1])
-			items[m->n_items++] = items[i];
+		if (i == 0 || k[i] != k[i - 1])
+			k[m->n_items++] = k[i];
+	return AFF_OK;
+}
 
-	if (m->n_users > AFF_MAX_ENTITIES || m->n_items > AFF_MAX_ENTITIES)
-	{
-		aff_release(a, items);
-		return aff_fail(err, AFF_ERR_LIMIT, "too many distinct users or items for one model");
-	}
+/* Fill keys, the by-user CSR (items through the index) and its transpose. */
+static AffStatus
+fill_matrix(const AffTriple *rows, int64_t n, const int64_t *items,
+			const AffBuildParams *p, const AffAllocator *a, AffMatrix *m,
+			AffError *err)
+{
+	KeyIndex	ki = {NULL, NULL, 0, {0, 0}};
+	AffStatus	st;
+	int64_t		i;
+	int64_t		u = -1;
+
 	st = alloc_matrix(a, m, err);
-	if (st == AFF_OK && !key_index_build(&ki, items, m->n_items, a))
-		st = aff_fail(err, AFF_ERR_NOMEM, "out of memory building the interaction matrix");
+	if (st == AFF_OK)
+		st = key_index_build(&ki, items, m->n_items, p, a, err);
 	if (st == AFF_OK)
 	{
 		memcpy(m->item_keys, items, sizeof(int64_t) * (size_t) m->n_items);
-		u = -1;
 		for (i = 0; i < n; i++)
 		{
+			if (stop_at(p, i))
+			{
+				st = cancelled(err);
+				break;
+			}
 			if (i == 0 || rows[i].user != rows[i - 1].user)
 			{
 				u++;
@@ -466,10 +535,51 @@ aff_matrix_build(AffTriple *rows, int64_t n_rows, int min_user, int min_item,
 			m->row_idx[i] = key_index_find(&ki, rows[i].item);
 			m->row_val[i] = rows[i].weight;
 		}
-		m->row_ptr[m->n_users] = n;
-		transpose(m);
 	}
 	key_index_free(&ki, a);
+	if (st == AFF_OK)
+	{
+		m->row_ptr[m->n_users] = n;
+		st = transpose(m, p, err);
+	}
+	return st;
+}
+
+/*
+ * Build m from rows[0..n_rows).  rows is reordered and overwritten.  On
+ * success m owns its arrays (free with aff_matrix_free); on failure it owns
+ * nothing.  An input that ends up empty after filtering is
+ * AFF_ERR_INVALID; a cancel through p->poll is AFF_ERR_CANCELLED.
+ */
+AffStatus
+aff_matrix_build(AffTriple *rows, int64_t n_rows, const AffBuildParams *p,
+				 const AffAllocator *a, AffMatrix *m, AffError *err)
+{
+	int64_t    *items = NULL;
+	int64_t		n;
+	int64_t		i;
+	AffStatus	st;
+
+	memset(m, 0, sizeof(*m));
+	st = merge_duplicates(rows, n_rows, &n, p, a, err);
+	if (st != AFF_OK)
+		return st;
+	m->duplicates_summed = n_rows - n;
+	if ((st = check_sums(rows, n, p, err)) != AFF_OK ||
+		(st = filter_rows(rows, &n, p, a, m, err)) != AFF_OK)
+		return st;
+
+	/* distinct users and items of the kept rows */
+	m->nnz = n;
+	m->n_users = 0;
+	for (i = 0; i < n; i++)
+		if (i == 0 || rows[i].user != rows[i - 1].user)
+			m->n_users++;
+	st = distinct_items(rows, n, &items, p, a, m, err);
+	if (st == AFF_OK && (m->n_users > AFF_MAX_ENTITIES || m->n_items > AFF_MAX_ENTITIES))
+		st = aff_fail(err, AFF_ERR_LIMIT, "too many distinct users or items for one model");
+	if (st == AFF_OK)
+		st = fill_matrix(rows, n, items, p, a, m, err);
 	aff_release(a, items);
 	if (st != AFF_OK)
 		aff_matrix_free(a, m);

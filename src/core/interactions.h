@@ -37,8 +37,18 @@ typedef struct AffMatrix
 	int64_t		dropped_interactions;
 } AffMatrix;
 
+/* What the build is asked to do, and how it is stopped. */
+typedef struct AffBuildParams
+{
+	int			min_user;		/* min_user_interactions */
+	int			min_item;		/* min_item_interactions */
+	uint64_t	index_key[2];	/* random key of the item index's hash */
+	AffPollFn	poll;			/* called between chunks; NULL: never stop */
+	void	   *poll_arg;
+} AffBuildParams;
+
 extern AffStatus aff_matrix_build(AffTriple *rows, int64_t n_rows,
-								  int min_user, int min_item,
+								  const AffBuildParams *p,
 								  const AffAllocator *a, AffMatrix *m,
 								  AffError *err);
 extern void aff_matrix_free(const AffAllocator *a, AffMatrix *m);

@@ -9,6 +9,7 @@
  * read by the serving code without further bounds checks.
  */
 #include "model_format.h"
+#include "text_key.h"
 
 #include <math.h>
 #include <string.h>
@@ -373,48 +374,6 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 	return AFF_OK;
 }
 
-/*
- * The int64 key of a text key: a 64-bit hash of its bytes.  Models with
- * text keys sort and search these like bigint keys and keep the text
- * beside them; a fit refuses two texts with the same hash, and lookups
- * compare the text too, so a hash collision can never confuse two keys.
- */
-int64_t
-aff_text_key(const char *s, size_t len)
-{
-	uint64_t	h = aff_hash((const uint8_t *) s, len, 0x6a09e667f3bcc908ULL);
-
-	h ^= h >> 33;
-	h *= 0xff51afd7ed558ccdULL;
-	h ^= h >> 33;
-	return (int64_t) h;
-}
-
-/* Text dictionary: offsets from 0 to len, each text hashing to its key. */
-static AffStatus
-check_text_keys(const int64_t *keys, int64_t n, const int64_t *off, const char *text,
-				uint64_t len, const char *what, AffError *err)
-{
-	int64_t		i;
-
-	if (off[0] != 0 || (uint64_t) off[n] != len)
-		return corrupt(err, "Text key offsets run from %llu to %llu.",
-					   (uint64_t) off[0], (uint64_t) off[n]);
-	for (i = 0; i < n; i++)
-	{
-		if (off[i + 1] < off[i] || (uint64_t) off[i + 1] > len)
-			return corrupt(err, "Text key offsets decrease or run past the end at index %llu.",
-						   (uint64_t) i, 0);
-		if (aff_text_key(text + off[i], (size_t) (off[i + 1] - off[i])) != keys[i])
-		{
-			aff_fail(err, AFF_ERR_CORRUPT, "invalid affinity.model value");
-			return aff_detail(err, "The text of %s key %lld does not match its hash.",
-							  what, (long long) i);
-		}
-	}
-	return AFF_OK;
-}
-
 static int
 strictly_ascending(const int64_t *k, int64_t n)
 {
@@ -508,10 +467,10 @@ check_content(const AffModelView *v, AffError *err)
 						   (uint64_t) bad % f, (uint64_t) bad / f);
 	}
 	if (h->key_type == AFF_KEYS_TEXT &&
-		(check_text_keys(v->user_keys, h->n_users, v->user_text_off, v->user_text,
-						 v->user_text_len, "user", err) != AFF_OK ||
-		 check_text_keys(v->item_keys, h->n_items, v->item_text_off, v->item_text,
-						 v->item_text_len, "item", err) != AFF_OK))
+		(aff_check_text_keys(h->text_hash_key, v->user_keys, h->n_users, v->user_text_off,
+							 v->user_text, v->user_text_len, "user", err) != AFF_OK ||
+		 aff_check_text_keys(h->text_hash_key, v->item_keys, h->n_items, v->item_text_off,
+							 v->item_text, v->item_text_len, "item", err) != AFF_OK))
 		return err->status;
 	if (h->method == AFF_METHOD_EASE)
 	{

@@ -122,7 +122,10 @@ typedef struct AffModelView
 	const int32_t *neighbor_idx;	/* neighbor_idx[neighbor_ptr[i] .. */
 	const float *neighbor_sim;	/* neighbor_ptr[i + 1]) */
 	uint64_t	neighbor_count;
-	/* text keys: key i is text[off[i] .. off[i + 1]); its int64 key is aff_text_key() of it */
+	/*
+	 * text keys: key i is text[off[i] .. off[i + 1]); its int64 key is
+	 * aff_text_key() of it under h->text_hash_key (text_key.h)
+	 */
 	const int64_t *user_text_off;
 	const char *user_text;
 	const int64_t *item_text_off;
@@ -151,6 +154,5 @@ extern AffStatus aff_model_view(const uint8_t *buf, uint64_t len,
 extern uint64_t aff_hash(const uint8_t *p, uint64_t n, uint64_t h);
 extern uint64_t aff_model_checksum(const uint8_t *buf, uint64_t len);
 extern const char *aff_method_name(int method);
-extern int64_t aff_text_key(const char *s, size_t len);
 
 #endif

@@ -3,12 +3,23 @@
  *		The affinity.fit aggregate: collect rows, then fit once.
  *
  * The transition function appends (user, item, weight) to one compact
- * array in the aggregate's memory context (huge allocations, so the state
- * may pass 1 GB), skipping and counting NULL and zero rows and rejecting
- * negative, NaN and infinite weights.  The final function builds the
- * sparse matrix, frees the rows, runs the chosen method and encodes the
- * model.  It keeps the result in the state, because PostgreSQL may call a
- * final function more than once on one state.
+ * array in the state's own memory context, a child of the aggregate's
+ * (huge allocations, so the state may pass 1 GB), skipping and counting
+ * NULL and zero rows and rejecting negative, NaN and infinite weights.  The
+ * final function builds the sparse matrix, frees the rows, runs the chosen
+ * method and encodes the model.  It keeps the result in the state, because
+ * PostgreSQL may call a final function more than once on one state.
+ *
+ * affinity.max_fit_memory is enforced as the rows arrive: every row
+ * updates the estimate of what the final step will need (rows, matrix,
+ * text keys as their dictionaries really hold them), and the fit stops at
+ * the first row that takes it over the limit.  The peak stored in the model
+ * is measured, not estimated: the bytes allocated in the state's context
+ * and the fit's work context, sampled at every engine allocation.
+ *
+ * Text keys are hashed under a random key per state (text_keys.c); states
+ * of parallel workers each have their own, so combine re-keys the other
+ * state's texts and remaps its rows.
  */
 #include "affinity_pg.h"
 
@@ -16,6 +27,7 @@
 
 #include "libpq/pqformat.h"
 #include "miscadmin.h"
+#include "port.h"
 #include "portability/instr_time.h"
 #include "utils/builtins.h"
 #include "utils/ps_status.h"
@@ -40,8 +52,62 @@ typedef struct FitState
 	bool		text_keys;		/* fed by the text overload */
 	TextDict   *user_texts;		/* text keys seen, when text_keys */
 	TextDict   *item_texts;
+	uint64		text_hash_key[2];	/* the texts' hash key, when text_keys */
+	Size		text_memory;	/* bytes the two dictionaries hold */
+	Size		counted;		/* bytes of cxt in held_total */
+	Size		wire_bytes;		/* size of the serialized form it came from */
+	bool		serialized;		/* rows handed on by serialfn, and freed */
 	bytea	   *result;			/* the model, once finalized */
 } FitState;
+
+/*
+ * Bytes held by every live fit state of this backend (a parallel leader has
+ * its own partial state and the states it combines), and their peak since
+ * the backend last held none: the part of a fit's peak that comes before
+ * its final step.  A reset callback on each state's context takes its
+ * bytes out when PostgreSQL frees it.
+ */
+static Size held_total = 0;
+static double held_peak = 0;
+
+/*
+ * Serialized states this backend has read (a parallel leader): each came
+ * through a tuple queue whose receive buffer keeps a copy of the largest
+ * message until the Gather node shuts down, after the fit.  Outside our
+ * contexts, but memory the fit makes the backend hold.
+ */
+static double held_wire = 0;
+
+/* Re-keying gives up after this many colliding keys (each is ~n^2/2^65). */
+#define MAX_REKEY_TRIES 8
+
+static void check_memory(const FitState *st, double n_rows, double users,
+						 double items, bool with_factors);
+static void free_text_dicts(FitState *st);
+
+/*
+ * Bring st's bytes in held_total up to date; extra is memory held beside
+ * the states for the moment (a serialized state being read).
+ */
+static void
+account(FitState *st, double extra)
+{
+	Size		now = MemoryContextMemAllocated(st->cxt, true);
+
+	held_total = held_total - st->counted + now;
+	st->counted = now;
+	held_peak = Max(held_peak, (double) held_total + held_wire + extra);
+}
+
+/* Reset callback of a state's context: its bytes are gone. */
+static void
+forget_state(void *arg)
+{
+	FitState   *st = arg;
+
+	held_total -= Min(held_total, st->counted);
+	st->counted = 0;
+}
 
 /* Grow the row array geometrically; guard the byte count first. */
 static void
@@ -71,15 +137,40 @@ reserve_rows(FitState *st, int64 need)
 	else
 		st->rows = repalloc_huge(st->rows, bytes);
 	st->cap_rows = cap;
+	account(st, 0);
+}
+
+/*
+ * An empty state in a new child context of the aggregate context, so that
+ * what it holds can be counted (and freed) as a whole.
+ */
+static FitState *
+fit_state_alloc(MemoryContext aggcxt)
+{
+	MemoryContext cxt = AllocSetContextCreate(aggcxt, "affinity.fit state",
+											  ALLOCSET_DEFAULT_SIZES);
+	FitState   *st = MemoryContextAllocZero(cxt, sizeof(FitState));
+	MemoryContextCallback *cb = MemoryContextAlloc(cxt, sizeof(MemoryContextCallback));
+
+	st->cxt = cxt;
+	if (held_total == 0)
+	{
+		held_peak = 0;			/* a new fit (or fits) in this backend */
+		held_wire = 0;
+	}
+	cb->func = forget_state;
+	cb->arg = st;
+	MemoryContextRegisterResetCallback(cxt, cb);
+	account(st, 0);
+	return st;
 }
 
 static FitState *
 fit_state_new(FunctionCallInfo fcinfo, MemoryContext aggcxt)
 {
-	FitState   *st = MemoryContextAllocZero(aggcxt, sizeof(FitState));
-	MemoryContext old = MemoryContextSwitchTo(aggcxt);
+	FitState   *st = fit_state_alloc(aggcxt);
+	MemoryContext old = MemoryContextSwitchTo(st->cxt);
 
-	st->cxt = aggcxt;
 	if (PG_NARGS() > 4 && !PG_ARGISNULL(4))
 		fit_options_parse(PG_GETARG_JSONB_P(4), &st->opts);
 	else
@@ -87,6 +178,20 @@ fit_state_new(FunctionCallInfo fcinfo, MemoryContext aggcxt)
 	st->have_options = true;
 	MemoryContextSwitchTo(old);
 	return st;
+}
+
+/*
+ * Refuse the fit as soon as what the final step will need passes
+ * affinity.max_fit_memory; the final step checks the same estimate, so a
+ * fit refused here would have been refused there, only later and larger.
+ */
+static inline void
+check_growing(const FitState *st)
+{
+	double		n = (double) st->n_rows;
+	double		entities = Min(n, (double) AFF_MAX_ENTITIES);
+
+	check_memory(st, n, entities, entities, false);
 }
 
 /* Append one row; shared by the bigint and text transition functions. */
@@ -100,6 +205,94 @@ add_row(FitState *st, int64 user, int64 item, float4 w)
 	st->rows[st->n_rows].weight = w;
 	st->rows[st->n_rows].pad = 0;
 	st->n_rows++;
+	check_growing(st);
+}
+
+/* A random non-zero 128-bit key from the server's strong random source. */
+static void
+draw_hash_key(uint64 key[2])
+{
+	do
+	{
+		if (!pg_strong_random(key, sizeof(uint64) * 2))
+			ereport(ERROR,
+					(errcode(ERRCODE_INTERNAL_ERROR),
+					 errmsg("could not generate a random hash key for affinity.fit")));
+	} while (key[0] == 0 && key[1] == 0);
+}
+
+/* The first text row of a state: dictionaries and their hash key. */
+static void
+start_text_keys(FitState *st)
+{
+	st->text_keys = true;
+	st->user_texts = text_dict_create(st->cxt);
+	st->item_texts = text_dict_create(st->cxt);
+	draw_hash_key(st->text_hash_key);
+}
+
+/*
+ * Rows' text keys after a re-key or a merge: each old key becomes the key
+ * its dictionary recorded for it (text_dict_mapped).  O(rows).
+ */
+static void
+remap_rows(AffTriple *rows, int64 n, TextDict *users, TextDict *items)
+{
+	int64		last_old = 0;
+	int64		last_new = 0;
+	int64		i;
+
+	for (i = 0; i < n; i++)
+	{
+		if ((i & 0xffff) == 0xffff)
+			CHECK_FOR_INTERRUPTS();
+		/* rows arrive grouped by user more often than not */
+		if (i == 0 || rows[i].user != last_old)
+		{
+			last_old = rows[i].user;
+			last_new = text_dict_mapped(users, last_old);
+		}
+		rows[i].user = last_new;
+		rows[i].item = text_dict_mapped(items, rows[i].item);
+	}
+}
+
+/*
+ * Two texts share a key under the state's hash key (chance alone does
+ * that, about n^2 / 2^65): draw another key, re-key both dictionaries and
+ * remap the rows.
+ */
+static void
+rekey_texts(FitState *st)
+{
+	uint64		key[2];
+	int			tries;
+
+	for (tries = 0;; tries++)
+	{
+		if (tries == MAX_REKEY_TRIES)
+			elog(ERROR, "text keys of affinity.fit collide under %d random hash keys",
+				 MAX_REKEY_TRIES);
+		draw_hash_key(key);
+		if (!text_dict_rekey(st->user_texts, key))
+			continue;
+		if (text_dict_rekey(st->item_texts, key))
+			break;
+		text_dict_rekey_abort(st->user_texts);
+	}
+	remap_rows(st->rows, st->n_rows, st->user_texts, st->item_texts);
+	text_dict_rekey_finish(st->user_texts);
+	text_dict_rekey_finish(st->item_texts);
+	st->text_hash_key[0] = key[0];
+	st->text_hash_key[1] = key[1];
+}
+
+/* Bytes the dictionaries hold, after they grew. */
+static void
+count_text_memory(FitState *st)
+{
+	st->text_memory = text_dict_memory(st->user_texts) + text_dict_memory(st->item_texts);
+	account(st, 0);
 }
 
 static void
@@ -126,6 +319,8 @@ take_row(FunctionCallInfo fcinfo, FitState **stp, float4 *w)
 		elog(ERROR, "affinity.fit transition called in non-aggregate context");
 	st = PG_ARGISNULL(0) ? fit_state_new(fcinfo, aggcxt) : (FitState *) PG_GETARG_POINTER(0);
 	*stp = st;
+	if (st->serialized)
+		elog(ERROR, "affinity.fit state used after it was serialized");
 	st->rows_read++;
 	if (PG_ARGISNULL(1) || PG_ARGISNULL(2) || PG_ARGISNULL(3))
 	{
@@ -174,7 +369,8 @@ affinity_fit_text_transfn(PG_FUNCTION_ARGS)
 	text	   *i;
 	MemoryContext old;
 	int64		uk;
-	int64		ik;
+	int64		ik = 0;
+	int64		texts;
 
 	if (take_row(fcinfo, &st, &w) == NULL)
 		PG_RETURN_POINTER(st);
@@ -184,15 +380,25 @@ affinity_fit_text_transfn(PG_FUNCTION_ARGS)
 		bad_weight(psprintf("\"%s\"", text_to_cstring(u)),
 				   psprintf("\"%s\"", text_to_cstring(i)), w);
 	if (!st->text_keys)
-	{
-		st->text_keys = true;
-		st->user_texts = text_dict_create(st->cxt);
-		st->item_texts = text_dict_create(st->cxt);
-	}
+		start_text_keys(st);
 	old = MemoryContextSwitchTo(st->cxt);
-	uk = text_dict_add(st->user_texts, VARDATA_ANY(u), VARSIZE_ANY_EXHDR(u), "user");
-	ik = text_dict_add(st->item_texts, VARDATA_ANY(i), VARSIZE_ANY_EXHDR(i), "item");
+	texts = text_dict_count(st->user_texts) + text_dict_count(st->item_texts);
+	for (;;)
+	{
+		bool		collision;
+
+		uk = text_dict_add(st->user_texts, st->text_hash_key, VARDATA_ANY(u),
+						   VARSIZE_ANY_EXHDR(u), &collision);
+		if (!collision)
+			ik = text_dict_add(st->item_texts, st->text_hash_key, VARDATA_ANY(i),
+							   VARSIZE_ANY_EXHDR(i), &collision);
+		if (!collision)
+			break;
+		rekey_texts(st);
+	}
 	MemoryContextSwitchTo(old);
+	if (text_dict_count(st->user_texts) + text_dict_count(st->item_texts) != texts)
+		count_text_memory(st);
 	add_row(st, uk, ik, w);
 	PG_RETURN_POINTER(st);
 }
@@ -222,11 +428,53 @@ merge_counts(FitState *a, const FitState *b)
 	a->rows_zero += b->rows_zero;
 }
 
+/* Free a state and everything it holds. */
+static void
+fit_state_free(FitState *st)
+{
+	MemoryContextDelete(st->cxt);
+}
+
+/*
+ * Move b's texts into a, under a's hash key, and rewrite b's rows with
+ * the keys they have in a.  A collision under a's key re-keys a (and its
+ * rows) and merges again.
+ */
+static void
+merge_texts(FitState *a, FitState *b)
+{
+	MemoryContext old;
+	int			tries;
+
+	if (!a->text_keys)
+		start_text_keys(a);
+	old = MemoryContextSwitchTo(a->cxt);
+	for (tries = 0;; tries++)
+	{
+		if (tries == MAX_REKEY_TRIES)
+			elog(ERROR, "text keys of affinity.fit collide under %d random hash keys",
+				 MAX_REKEY_TRIES);
+		if (text_dict_merge(a->user_texts, a->text_hash_key, b->user_texts) &&
+			text_dict_merge(a->item_texts, a->text_hash_key, b->item_texts))
+			break;
+		rekey_texts(a);
+	}
+	MemoryContextSwitchTo(old);
+	remap_rows(b->rows, b->n_rows, b->user_texts, b->item_texts);
+	count_text_memory(a);
+}
+
 PG_FUNCTION_INFO_V1(affinity_fit_combinefn);
 
 /*
  * Combine two partial states (parallel aggregation).  The order of rows
  * does not matter: the final step sorts them, duplicates included.
+ *
+ * state2 always comes from affinity_fit_deserialfn, which builds it in its
+ * own context under the aggregate context, so it can be taken over as it
+ * is: when state1 holds no rows, state2 becomes the result instead of being
+ * copied.  Otherwise state2's texts are re-keyed into state1's, its rows
+ * appended, and state2 freed at once, so the leader holds each row once.
  */
 Datum
 affinity_fit_combinefn(PG_FUNCTION_ARGS)
@@ -240,39 +488,45 @@ affinity_fit_combinefn(PG_FUNCTION_ARGS)
 	if (PG_ARGISNULL(1))
 		PG_RETURN_POINTER(PG_ARGISNULL(0) ? NULL : PG_GETARG_POINTER(0));
 	b = (FitState *) PG_GETARG_POINTER(1);
-	if (PG_ARGISNULL(0))
+	a = PG_ARGISNULL(0) ? NULL : (FitState *) PG_GETARG_POINTER(0);
+	if (a == NULL || (a->n_rows == 0 && !a->text_keys))
 	{
-		a = MemoryContextAllocZero(aggcxt, sizeof(FitState));
-		a->cxt = aggcxt;
-	}
-	else
-		a = (FitState *) PG_GETARG_POINTER(0);
-	merge_counts(a, b);
-	append_rows(a, b->rows, b->n_rows);
-	if (b->text_keys)
-	{
-		if (!a->text_keys)
+		if (a != NULL)
 		{
-			a->text_keys = true;
-			a->user_texts = text_dict_create(a->cxt);
-			a->item_texts = text_dict_create(a->cxt);
+			merge_counts(b, a);
+			fit_state_free(a);
 		}
-		text_dict_merge(a->user_texts, b->user_texts, "user");
-		text_dict_merge(a->item_texts, b->item_texts, "item");
+		account(b, (double) b->wire_bytes);
+		check_growing(b);
+		PG_RETURN_POINTER(b);
 	}
+	merge_counts(a, b);
+	if (b->text_keys)
+		merge_texts(a, b);
+	append_rows(a, b->rows, b->n_rows);
+	/* the peak: both states and b's serialized form, still in memory */
+	account(a, (double) b->wire_bytes);
+	fit_state_free(b);
+	check_growing(a);
 	PG_RETURN_POINTER(a);
 }
 
 PG_FUNCTION_INFO_V1(affinity_fit_serialfn);
 
-/* Partial state -> bytea: options, counters, then the rows. */
+/* Partial state -> bytea: options, counters, the rows, then the texts and their hash key. */
 Datum
 affinity_fit_serialfn(PG_FUNCTION_ARGS)
 {
 	FitState   *st = (FitState *) PG_GETARG_POINTER(0);
 	StringInfoData buf;
-	double		bytes = (double) st->n_rows * sizeof(AffTriple) + 1024 +
-		(st->text_keys ? (double) (st->user_texts->bytes + st->item_texts->bytes) * 2 : 0);
+	bytea	   *out;
+	double		bytes;
+
+	if (st->serialized)
+		elog(ERROR, "affinity.fit state serialized twice");
+	bytes = (double) st->n_rows * sizeof(AffTriple) + 1024 +
+		(st->text_keys ? (double) (st->user_texts->bytes + st->item_texts->bytes) +
+		 4.0 * (text_dict_count(st->user_texts) + text_dict_count(st->item_texts)) : 0);
 
 	if (bytes > (double) (MaxAllocSize - VARHDRSZ))
 		ereport(ERROR,
@@ -294,10 +548,28 @@ affinity_fit_serialfn(PG_FUNCTION_ARGS)
 	pq_sendint8(&buf, st->text_keys ? 1 : 0);
 	if (st->text_keys)
 	{
+		pq_sendint64(&buf, (int64) st->text_hash_key[0]);
+		pq_sendint64(&buf, (int64) st->text_hash_key[1]);
 		text_dict_serialize(&buf, st->user_texts);
 		text_dict_serialize(&buf, st->item_texts);
 	}
-	PG_RETURN_BYTEA_P(pq_endtypsend(&buf));
+	out = pq_endtypsend(&buf);
+	account(st, (double) VARSIZE(out));
+	/*
+	 * A serialized partial state is never used again (the leader combines
+	 * its serialized form): free its rows and texts now rather than when
+	 * the executor shuts the node down, so that the leader's own share is
+	 * not held beside the states it combines.
+	 */
+	st->serialized = true;
+	if (st->rows != NULL)
+		pfree(st->rows);
+	st->rows = NULL;
+	st->n_rows = st->cap_rows = 0;
+	if (st->text_keys)
+		free_text_dicts(st);
+	account(st, 0);
+	PG_RETURN_BYTEA_P(out);
 }
 
 PG_FUNCTION_INFO_V1(affinity_fit_deserialfn);
@@ -317,8 +589,7 @@ affinity_fit_deserialfn(PG_FUNCTION_ARGS)
 
 	if (!AggCheckCallContext(fcinfo, &aggcxt))
 		elog(ERROR, "affinity_fit_deserialfn called in non-aggregate context");
-	st = MemoryContextAllocZero(aggcxt, sizeof(FitState));
-	st->cxt = aggcxt;
+	st = fit_state_alloc(aggcxt);
 	buf.data = VARDATA_ANY(b);
 	buf.len = VARSIZE_ANY_EXHDR(b);
 	buf.maxlen = 0;
@@ -339,10 +610,16 @@ affinity_fit_deserialfn(PG_FUNCTION_ARGS)
 	st->text_keys = pq_getmsgbyte(&buf) != 0;
 	if (st->text_keys)
 	{
-		st->user_texts = text_dict_deserialize(&buf, aggcxt);
-		st->item_texts = text_dict_deserialize(&buf, aggcxt);
+		st->text_hash_key[0] = (uint64) pq_getmsgint64(&buf);
+		st->text_hash_key[1] = (uint64) pq_getmsgint64(&buf);
+		st->user_texts = text_dict_deserialize(&buf, st->cxt, st->text_hash_key);
+		st->item_texts = text_dict_deserialize(&buf, st->cxt, st->text_hash_key);
+		count_text_memory(st);
 	}
 	pq_getmsgend(&buf);
+	st->wire_bytes = VARSIZE_ANY(b);
+	held_wire += (double) st->wire_bytes;	/* the queue's buffer */
+	account(st, (double) st->wire_bytes);	/* and the tuple read from it */
 	PG_RETURN_POINTER(st);
 }
 
@@ -355,6 +632,24 @@ affinity_fit_deserialfn(PG_FUNCTION_ARGS)
  * is counted (with_factors false: the build allocates O(rows)); afterwards
  * the exact counts and the factors are.
  */
+/*
+ * Text keys: the dictionaries as they are held (texts, entries, hash
+ * tables), plus one more copy of the texts and their offsets, for the
+ * layout of the model's sections while the dictionaries still exist, or
+ * later the model and the executor's copy of it.
+ */
+static double
+text_bytes_needed(const FitState *st)
+{
+	double		n;
+
+	if (!st->text_keys || st->user_texts == NULL)
+		return 0;
+	n = (double) (text_dict_count(st->user_texts) + text_dict_count(st->item_texts));
+	return (double) st->text_memory +
+		(double) (st->user_texts->bytes + st->item_texts->bytes) + 8.0 * n;
+}
+
 static double
 estimate_fit_bytes(const FitState *st, double n_rows, double users, double items,
 				   bool with_factors)
@@ -367,7 +662,8 @@ estimate_fit_bytes(const FitState *st, double n_rows, double users, double items
 		+ n_rows * 32.0 + entities * 24.0	/* CSR both ways, dictionaries */
 		+ n_rows * 8.0				/* confidences */
 		+ 3.0 * entities * f * 4.0	/* factors in the fit and two model copies */
-		+ 2.0 * (n_rows * 8.0 + entities * 16.0);	/* training lists in two copies */
+		+ 2.0 * (n_rows * 8.0 + entities * 16.0)	/* training lists in two copies */
+		+ text_bytes_needed(st);
 }
 
 static void
@@ -377,14 +673,27 @@ check_memory(const FitState *st, double n_rows, double users, double items,
 	double		need = estimate_fit_bytes(st, n_rows, users, items, with_factors);
 	double		limit = (double) affinity_max_fit_memory_mb * 1024.0 * 1024.0;
 
-	if (need > limit)
+	if (need <= limit)
+		return;
+	if (st->text_keys && st->user_texts != NULL)
 		ereport(ERROR,
 				(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
 				 errmsg("affinity.fit would need about %.0f MB, over affinity.max_fit_memory",
 						need / (1024.0 * 1024.0)),
-				 errdetail("The fit holds %.0f interactions of at most %.0f users and %.0f items; affinity.max_fit_memory is %d MB.",
-						   n_rows, users, items, affinity_max_fit_memory_mb),
-				 errhint("Raise affinity.max_fit_memory, lower factors, or fit on fewer rows.")));
+				 errdetail("The fit holds %.0f interactions of at most %.0f users and %.0f items, and " INT64_FORMAT " distinct text keys of %.1f MB (%.1f MB with their dictionaries); affinity.max_fit_memory is %d MB.",
+						   n_rows, users, items,
+						   text_dict_count(st->user_texts) + text_dict_count(st->item_texts),
+						   (double) (st->user_texts->bytes + st->item_texts->bytes) / (1024.0 * 1024.0),
+						   (double) st->text_memory / (1024.0 * 1024.0),
+						   affinity_max_fit_memory_mb),
+				 errhint("Raise affinity.max_fit_memory, map long text keys to shorter ones, or fit on fewer rows.")));
+	ereport(ERROR,
+			(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
+			 errmsg("affinity.fit would need about %.0f MB, over affinity.max_fit_memory",
+					need / (1024.0 * 1024.0)),
+			 errdetail("The fit holds %.0f interactions of at most %.0f users and %.0f items; affinity.max_fit_memory is %d MB.",
+					   n_rows, users, items, affinity_max_fit_memory_mb),
+			 errhint("Raise affinity.max_fit_memory, lower factors, or fit on fewer rows.")));
 }
 
 /* Header fields common to every method. */
@@ -530,6 +839,107 @@ run_als(const FitState *st, const AffMatrix *m, AffModelParts *parts,
 	parts->count[AFF_SEC_SWEEP_SECONDS] = o->iterations;
 }
 
+/*
+ * The fit's memory as PostgreSQL accounts it: bytes allocated in the fit
+ * states of the backend (rows, text dictionaries, later the model: see
+ * held_total) and in the fit's work context (matrix, scratch, factors,
+ * sections), with the highest sum seen, starting from the peak of
+ * collecting and combining the rows.  The engine's allocator samples it after every
+ * allocation, so transient scratch (the radix sort's second buffer) is in
+ * the peak; large allocations are blocks of their own that are returned to
+ * the system when freed, so the sum follows what the process holds.
+ */
+typedef struct FitMeter
+{
+	AffAllocator inner;			/* the work context's allocator */
+	FitState   *st;
+	MemoryContext work;
+	double		peak;
+} FitMeter;
+
+static double
+meter_sample(FitMeter *fm)
+{
+	double		now;
+
+	account(fm->st, 0);
+	now = (double) held_total + held_wire + (double) MemoryContextMemAllocated(fm->work, true);
+
+	fm->peak = Max(fm->peak, now);
+	return now;
+}
+
+static void *
+metered_alloc(void *ctx, size_t size)
+{
+	FitMeter   *fm = ctx;
+	void	   *p = fm->inner.alloc(fm->inner.ctx, size);
+
+	if (p != NULL)
+		meter_sample(fm);
+	return p;
+}
+
+static void
+metered_release(void *ctx, void *ptr)
+{
+	FitMeter   *fm = ctx;
+
+	fm->inner.release(fm->inner.ctx, ptr);
+}
+
+/* An allocator on the work context that keeps fm's peak. */
+static AffAllocator
+metered_allocator(FitMeter *fm, FitState *st, MemoryContext work)
+{
+	AffAllocator a;
+
+	fm->inner = context_allocator(work);
+	fm->st = st;
+	fm->work = work;
+	fm->peak = held_peak;		/* collecting and combining the rows */
+	meter_sample(fm);
+	a.alloc = metered_alloc;
+	a.release = metered_release;
+	a.ctx = fm;
+	return a;
+}
+
+/*
+ * Sort, merge and index the rows into m, stopping on a cancel; the rows
+ * are freed afterwards.  The item index's hash key is drawn here, so that
+ * nobody can choose ids that crowd its slots.
+ */
+static void
+build_matrix(FitState *st, const AffAllocator *a, AffMatrix *m)
+{
+	AffBuildParams bp;
+	AffError	err;
+
+	/* no slack beyond the last row: the build touches every byte it holds */
+	if (st->cap_rows > st->n_rows)
+	{
+		st->rows = repalloc_huge(st->rows, sizeof(AffTriple) * st->n_rows);
+		st->cap_rows = st->n_rows;
+	}
+	bp.min_user = st->opts.min_user_interactions;
+	bp.min_item = st->opts.min_item_interactions;
+	draw_hash_key(bp.index_key);
+	bp.poll = engine_poll;
+	bp.poll_arg = NULL;
+	engine_check(aff_matrix_build(st->rows, st->n_rows, &bp, a, m, &err), &err);
+}
+
+/* The text dictionaries, once laid out in the model's sections. */
+static void
+free_text_dicts(FitState *st)
+{
+	text_dict_free(st->user_texts);
+	text_dict_free(st->item_texts);
+	st->user_texts = st->item_texts = NULL;
+	st->text_memory = 0;
+}
+
 /* The whole final step; returns the model allocated in st->cxt. */
 static bytea *
 fit_model(FitState *st)
@@ -538,7 +948,8 @@ fit_model(FitState *st)
 											   "affinity fit",
 											   ALLOCSET_DEFAULT_SIZES);
 	MemoryContext old = MemoryContextSwitchTo(work);
-	AffAllocator a = context_allocator(work);
+	FitMeter	meter;
+	AffAllocator a = metered_allocator(&meter, st, work);
 	AffMatrix	m;
 	AffAls		als;
 	AffModelParts parts;
@@ -559,19 +970,23 @@ fit_model(FitState *st)
 	/* users and items are at most the rows until the matrix says */
 	check_memory(st, st->n_rows, Min(st->n_rows, AFF_MAX_ENTITIES),
 				 Min(st->n_rows, AFF_MAX_ENTITIES), false);
-	if (aff_matrix_build(st->rows, st->n_rows, st->opts.min_user_interactions,
-						 st->opts.min_item_interactions, &a, &m, &err) != AFF_OK)
-		report_engine_error(&err);
+	build_matrix(st, &a, &m);
 	check_memory(st, m.nnz, m.n_users, m.n_items, true);
 	/* the rows are not needed any more */
-	peak = (double) st->cap_rows * sizeof(AffTriple) + MemoryContextMemAllocated(work, true);
+	meter_sample(&meter);
 	pfree(st->rows);
 	st->rows = NULL;
 	st->n_rows = st->cap_rows = 0;
 
 	fill_header(&parts, st, &m);
 	if (st->text_keys)
+	{
+		parts.h.text_hash_key[0] = st->text_hash_key[0];
+		parts.h.text_hash_key[1] = st->text_hash_key[1];
 		add_text_sections(st, &m, &parts);
+		meter_sample(&meter);
+		free_text_dicts(st);
+	}
 	parts.data[AFF_SEC_POPULARITY] = item_popularity(&m);
 	parts.count[AFF_SEC_POPULARITY] = m.n_items;
 	switch (st->opts.method)
@@ -596,10 +1011,16 @@ fit_model(FitState *st)
 	parts.h.fit_seconds = seconds_since(t0);
 	{
 		uint64		model_bytes = 0;
+		double		now = meter_sample(&meter);
+		double		state_now = (double) held_total + held_wire;
 
-		/* at the end: the work context, plus the model and the executor's copy */
+		/*
+		 * Still to come: the model beside the work context, then, once the
+		 * work context is gone, the executor's copy beside the model.
+		 */
 		(void) aff_model_size(&parts, &model_bytes, &err);
-		peak = Max(peak, (double) MemoryContextMemAllocated(work, true) + 2.0 * model_bytes);
+		peak = Max(meter.peak, now + model_bytes);
+		peak = Max(peak, state_now + 2.0 * model_bytes);
 		parts.h.peak_memory = (int64) peak;
 	}
 	MemoryContextSwitchTo(st->cxt);

@@ -24,7 +24,7 @@
  *
  * Build (tests/check_fuzz.sh does this):
  *	clang -g -O1 -fsanitize=fuzzer,address,undefined -fno-sanitize-recover=undefined \
- *		-Isrc/core tests/fuzz/fuzz_model.c src/core/model_format.c src/core/util.c -lm
+ *		-Isrc/core tests/fuzz/fuzz_model.c src/core/model_format.c src/core/text_key.c src/core/util.c -lm
  */
 #include <stdint.h>
 #include <stdio.h>
