@@ -10,6 +10,13 @@ OBJS = \
 	src/core/model_format.o \
 	src/core/ease.o \
 	src/core/knn.o \
+	src/core/method.o \
+	src/core/method_weights.o \
+	src/core/method_als.o \
+	src/core/method_popularity.o \
+	src/core/method_ease.o \
+	src/core/method_knn.o \
+	src/core/serve.o \
 	src/pg/guc.o \
 	src/pg/options.o \
 	src/pg/model_io.o \
@@ -22,7 +29,7 @@ OBJS = \
 	src/pg/metrics.o \
 	src/pg/erase.o \
 	src/pg/text_keys.o \
-	src/pg/weights.o
+	src/pg/method_glue.o
 
 EXTENSION = affinity
 EXTVERSION = 1.1

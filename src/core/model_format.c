@@ -52,23 +52,6 @@ aff_section_elem_size(int kind)
 	return 0;
 }
 
-const char *
-aff_method_name(int method)
-{
-	switch (method)
-	{
-		case AFF_METHOD_IMPLICIT_ALS:
-			return "implicit_als";
-		case AFF_METHOD_POPULARITY:
-			return "popularity";
-		case AFF_METHOD_EASE:
-			return "ease";
-		case AFF_METHOD_ITEM_KNN:
-			return "item_knn";
-	}
-	return "unknown";
-}
-
 /* A word-at-a-time multiply-xorshift hash: detects damage, not attacks. */
 uint64_t
 aff_hash(const uint8_t *p, uint64_t n, uint64_t h)

@@ -65,7 +65,7 @@ typedef struct AffModelHeader
 	int32_t		factors;
 	int32_t		iterations;
 	int32_t		solver;
-	int32_t		cg_steps;
+	int32_t		solver_steps;
 	int32_t		confidence;
 	int32_t		threads;
 	int32_t		min_user_interactions;

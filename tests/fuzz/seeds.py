@@ -38,7 +38,7 @@ HEADER_FIELDS = [
     ("varlena_word", "I"), ("magic", "4s"), ("version", "H"), ("method", "H"),
     ("key_type", "H"), ("n_sections", "H"), ("total_size", "Q"), ("checksum", "Q"),
     ("fingerprint", "Q"), ("n_users", "q"), ("n_items", "q"), ("nnz", "q"),
-    ("factors", "i"), ("iterations", "i"), ("solver", "i"), ("cg_steps", "i"),
+    ("factors", "i"), ("iterations", "i"), ("solver", "i"), ("solver_steps", "i"),
     ("confidence", "i"), ("threads", "i"), ("min_user_interactions", "i"),
     ("min_item_interactions", "i"), ("neighbors", "i"), ("max_items", "i"),
     ("regularization", "d"), ("alpha", "d"), ("epsilon", "d"), ("seed", "q"),
@@ -244,7 +244,7 @@ def synth(method, n_users, n_items, factors=3, neighbors=2, seed=7, text=False):
     h = {n: 0 for n, _ in HEADER_FIELDS}
     h.update(magic=b"AFMD", version=1, method=METHOD[method], key_type=1, reserved=b"\0" * 48,
              n_users=n_users, n_items=n_items, nnz=len(idx), factors=factors, iterations=2,
-             solver=1, cg_steps=3, confidence=2, threads=1, min_user_interactions=1,
+             solver=1, solver_steps=3, confidence=2, threads=1, min_user_interactions=1,
              min_item_interactions=1, neighbors=neighbors, max_items=20000,
              regularization=0.1, alpha=10.0, epsilon=1.0, seed=42, rows_read=len(idx),
              fit_seconds=0.001)
