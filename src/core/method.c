@@ -237,10 +237,11 @@ aff_fit_header(AffModelParts *parts, const AffOptions *o, const AffMatrix *m,
 	{
 		const AffOptionDef *d = &aff_option_defs[i];
 		const char *src = (const char *) o + d->field;
-		char	   *dst = (char *) h + d->header_field;
+		char	   *dst;
 
 		if (d->header_field == AFF_NO_FIELD)
 			continue;
+		dst = (char *) h + d->header_field;
 		if (d->type == AFF_OPTTYPE_REAL)
 			memcpy(dst, src, sizeof(double));
 		else if (d->type == AFF_OPTTYPE_INT64)

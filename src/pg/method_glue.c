@@ -140,13 +140,14 @@ describe_options(StringInfo s, const AffModelHeader *h)
 	for (i = 0; i < AFF_OPT_COUNT; i++)
 	{
 		const AffOptionDef *d = &aff_option_defs[i];
-		const char *src = (const char *) h + d->header_field;
+		const char *src;
 		int32		iv;
 		int64		lv;
 		double		dv;
 
 		if (!(mask & AFF_OPT_BIT(d->id)) || d->header_field == AFF_NO_FIELD)
 			continue;
+		src = (const char *) h + d->header_field;
 		appendStringInfo(s, "%s\"%s\": ", first ? "" : ", ", d->name);
 		first = false;
 		switch (d->type)
