@@ -13,6 +13,13 @@ OBJS = \
 	src/core/text_key.o \
 	src/core/ease.o \
 	src/core/knn.o \
+	src/core/method.o \
+	src/core/method_weights.o \
+	src/core/method_als.o \
+	src/core/method_popularity.o \
+	src/core/method_ease.o \
+	src/core/method_knn.o \
+	src/core/serve.o \
 	src/pg/guc.o \
 	src/pg/options.o \
 	src/pg/model_io.o \
@@ -25,7 +32,7 @@ OBJS = \
 	src/pg/metrics.o \
 	src/pg/erase.o \
 	src/pg/text_keys.o \
-	src/pg/weights.o
+	src/pg/method_glue.o
 
 EXTENSION = affinity
 EXTVERSION = 1.2

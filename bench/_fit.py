@@ -154,7 +154,7 @@ def peer(path, used, iterations, threads, tag):
     t0 = time.perf_counter()
     subprocess.run(["/usr/bin/python3", os.path.join(B.BENCH_DIR, "peer_als.py"), path,
                     "--factors", str(factors), "--iterations", str(iterations),
-                    "--cg-steps", str(used["cg_steps"]),
+                    "--cg-steps", str(used["solver_steps"]),
                     "--regularization", str(used["regularization"]),
                     "--alpha", str(used["alpha"]), "--epsilon", str(used["epsilon"]),
                     "--confidence", used["confidence"],
@@ -182,7 +182,7 @@ def grid(conn, table, rates, iters):
                     cells.append(r)
                     continue
                 fl = sweep_flops(r["users"], r["items"], r["interactions"], f, solver,
-                                 r["used"]["cg_steps"])
+                                 r["used"]["solver_steps"])
                 sw = B.median(r["sweep_seconds"])
                 r["flops"] = fl
                 r["sweep_median"] = sw
@@ -282,7 +282,7 @@ def main():
             B.query(conn, "DROP TABLE %s" % table)
             continue
         fl = sweep_flops(h["users"], h["items"], h["interactions"], 64, "cg",
-                         h["used"]["cg_steps"])
+                         h["used"]["solver_steps"])
         h["gflops"] = fl["total"] / B.median(h["sweep_seconds"]) / 1e9
         part["headline"] = h
         B.log("  statement %.2f s = ingest %.2f s + matrix build %.2f s + %d sweeps %.2f s "

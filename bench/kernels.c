@@ -67,7 +67,7 @@ main(int argc, char **argv)
 	p.threads = atoi(argv[6]);
 	sweeps = atoi(argv[7]);
 	p.iterations = sweeps;
-	p.cg_steps = 3;
+	p.solver_steps = 3;
 	p.confidence = AFF_CONFIDENCE_LOG;
 	p.regularization = 30;
 	p.alpha = 10;

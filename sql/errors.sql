@@ -51,3 +51,40 @@ SELECT * FROM err_model, affinity.items_like(model, 1, -3);
 -- the table is intact after all of that
 SELECT count(*) FROM err_buys;
 SELECT affinity.describe(model)->'users' FROM err_model;
+
+-- option bounds: every number option has an upper bound, and a number
+-- beyond double precision is refused naming the option
+SELECT affinity.fit(user_id, item_id, weight, '{"alpha": 1e400}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"alpha": 1e300}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"regularization": 1e300}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"epsilon": 1e-9}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"solver_steps": 1001}') FROM err_buys;
+SELECT affinity.fit(user_id, item_id, weight, '{"threads": 1025}') FROM err_buys;
+-- the old name of solver_steps still works, with a notice
+SELECT (affinity.describe(affinity.fit(user_id, item_id, weight,
+          '{"cg_steps": 2, "factors": 2, "iterations": 1}'))->'options'->'solver_steps') AS solver_steps
+FROM err_buys;
+-- a fit at the bounds succeeds and gives finite factors
+SELECT d->'options'->'alpha' AS alpha, d->'options'->'regularization' AS regularization,
+       d->'options'->'epsilon' AS epsilon,
+       bool_and(x = x AND abs(x) < 'Infinity') AS finite
+FROM (SELECT affinity.fit(user_id, item_id, weight,
+        '{"alpha": 1e6, "regularization": 1e8, "epsilon": 1e-6, "factors": 2, "iterations": 2}') AS m
+      FROM err_buys) f, affinity.describe(m) d, affinity.user_vectors(m) uv, unnest(uv.vector) x
+GROUP BY 1, 2, 3;
+SELECT affinity.describe(affinity.fit(user_id, item_id, weight,
+          '{"method": "item_knn", "alpha": 1e6, "epsilon": 1e-6, "confidence": "linear"}'))->'items' AS items
+FROM err_buys;
+-- a confidence beyond 1e12 (linear, one weight of 1e30) is refused, naming
+-- the interaction, for implicit_als and item_knn alike
+SELECT affinity.fit(u, i, w, '{"confidence": "linear", "factors": 2}')
+FROM (VALUES (1::bigint, 1::bigint, 1::real), (2, 1, 1e30), (2, 2, 1)) v(u, i, w);
+SELECT affinity.fit(u, i, w, '{"method": "item_knn", "confidence": "linear"}')
+FROM (VALUES (1::bigint, 1::bigint, 1::real), (2, 1, 1e30), (2, 2, 1)) v(u, i, w);
+-- the log confidence of the same weight is usable
+SELECT affinity.describe(affinity.fit(u, i, w, '{"factors": 2, "iterations": 2}'))->'users' AS users
+FROM (VALUES (1::bigint, 1::bigint, 1::real), (2, 1, 1e30), (2, 2, 1)) v(u, i, w);
+-- a setting beyond an option's bound is refused like the option
+SET affinity.alpha = 1e9;
+SELECT affinity.fit(user_id, item_id, weight) FROM err_buys;
+RESET affinity.alpha;

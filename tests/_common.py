@@ -28,6 +28,24 @@ RETAIL_COLUMNS = ["InvoiceNo", "StockCode", "Description", "Quantity",
                   "InvoiceDate", "UnitPrice", "CustomerID", "Country"]
 
 
+
+def build_engine_program(exe, program, extra_flags=()):
+    """Compile program (a path under the checkout) with every engine source
+    (src/core/*.c: the validator reads the method table, so the engine is
+    linked whole) and OpenBLAS into exe; returns (returncode, output)."""
+    import glob
+    import subprocess
+    srcs = [os.path.join(REPO_DIR, program)] + sorted(glob.glob(os.path.join(REPO_DIR, "src", "core", "*.c")))
+
+    def pkg(flag, default):
+        p = subprocess.run(["pkg-config", flag, "openblas"], stdout=subprocess.PIPE,
+                           stderr=subprocess.DEVNULL, universal_newlines=True)
+        return p.stdout.split() if p.returncode == 0 else default
+    cmd = (["cc", "-std=gnu11", "-O2", "-pthread"] + list(extra_flags) + pkg("--cflags", []) +
+           ["-o", exe] + srcs + pkg("--libs", ["-lopenblas"]) + ["-lm"])
+    p = subprocess.run(cmd, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, universal_newlines=True)
+    return p.returncode, p.stdout
+
 def skip(reason):
     """Report a skip to the runner and stop."""
     print("skipped: " + reason)

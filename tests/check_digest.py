@@ -29,7 +29,7 @@ import seeds  # noqa: E402
 
 import psycopg2  # noqa: E402
 
-from _common import REPO_DIR, Checker, connect, fail  # noqa: E402
+from _common import build_engine_program, REPO_DIR, Checker, connect, fail  # noqa: E402
 
 FIPS = [
     (b"abc", "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"),
@@ -42,13 +42,9 @@ FIPS = [
 
 def build_driver(tmp):
     exe = os.path.join(tmp, "digest_driver")
-    src = [os.path.join(REPO_DIR, p) for p in
-           ("tests/digest/digest_driver.c", "src/core/digest.c", "src/core/model_format.c",
-            "src/core/util.c")]
-    p = subprocess.run(["cc", "-std=gnu11", "-O2", "-Wall", "-o", exe] + src + ["-lm"],
-                       stdout=subprocess.PIPE, stderr=subprocess.STDOUT, universal_newlines=True)
-    if p.returncode != 0:
-        fail("cannot build the digest driver: " + p.stdout[-2000:])
+    rc, out = build_engine_program(exe, "tests/digest/digest_driver.c", ["-Wall"])
+    if rc != 0:
+        fail("cannot build the digest driver: " + out[-2000:])
     return exe
 
 

@@ -2,8 +2,7 @@
 # tests/check_fuzz.sh: fuzz the model validator (aff_model_validate) for a bounded time.
 #
 # Builds tests/fuzz/fuzz_model.c with clang's libFuzzer, AddressSanitizer and
-# UndefinedBehaviorSanitizer (src/core/model_format.c and util.c compiled as they are, outside
-# the server), builds a seed corpus with tests/fuzz/seeds.py (models fitted by the extension
+# UndefinedBehaviorSanitizer (the engine's sources compiled as they are, outside the server), builds a seed corpus with tests/fuzz/seeds.py (models fitted by the extension
 # through the PG* connection, synthesized models of every method layout, crafted bad values),
 # and runs the fuzzer for AFFINITY_FUZZ_SECONDS (default 20) seconds on one core.
 #
@@ -58,10 +57,13 @@ if [ -z "$cc" ]; then
 fi
 
 bin=$tmp/fuzz_model
+# the validator reads the method table, so the whole engine is linked (with OpenBLAS)
+blas_cflags=$(pkg-config --cflags openblas 2>/dev/null)
+blas_libs=$(pkg-config --libs openblas 2>/dev/null || echo -lopenblas)
+# shellcheck disable=SC2086
 if ! "$cc" -g -O1 -fsanitize=fuzzer,address,undefined -fno-sanitize-recover=undefined \
-	-I"$repo/src/core" "$repo/tests/fuzz/fuzz_model.c" "$repo/src/core/model_format.c" \
-	"$repo/src/core/text_key.c" \
-	"$repo/src/core/util.c" -lm -o "$bin" >"$tmp/build.log" 2>&1; then
+	-DAFF_ASSERTS -pthread $blas_cflags -I"$repo/src/core" "$repo/tests/fuzz/fuzz_model.c" \
+	"$repo"/src/core/*.c $blas_libs -lm -o "$bin" >"$tmp/build.log" 2>&1; then
 	cat "$tmp/build.log"
 	echo "FAILED: the fuzz target does not build with $cc"
 	exit 1

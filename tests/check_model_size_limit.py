@@ -28,20 +28,16 @@ import time
 
 import psycopg2
 
-from _common import REPO_DIR, Checker, connect, fail, skip
+from _common import build_engine_program, REPO_DIR, Checker, connect, fail, skip
 
 LIMIT = 720 * 1024 * 1024
 
 
 def build_writer(tmp):
     exe = os.path.join(tmp, "big_value")
-    src = [os.path.join(REPO_DIR, p) for p in
-           ("tests/digest/big_value.c", "src/core/digest.c", "src/core/model_format.c",
-            "src/core/util.c")]
-    p = subprocess.run(["cc", "-std=gnu11", "-O2", "-o", exe] + src + ["-lm"],
-                       stdout=subprocess.PIPE, stderr=subprocess.STDOUT, universal_newlines=True)
-    if p.returncode != 0:
-        fail("cannot build big_value: " + p.stdout[-2000:])
+    rc, out = build_engine_program(exe, "tests/digest/big_value.c", ())
+    if rc != 0:
+        fail("cannot build big_value: " + out[-2000:])
     return exe
 
 

@@ -23,7 +23,8 @@ typedef enum AffStatus
 	AFF_ERR_INVALID,			/* bad input values or options */
 	AFF_ERR_CORRUPT,			/* model bytes fail validation */
 	AFF_ERR_LIMIT,				/* a size limit of the format is exceeded */
-	AFF_ERR_NUMERIC				/* a solver met a non positive definite system */
+	AFF_ERR_NUMERIC,			/* a solver met a non positive definite system */
+	AFF_ERR_OPTION				/* an option's value cannot be used */
 } AffStatus;
 
 typedef struct AffError
@@ -31,6 +32,7 @@ typedef struct AffError
 	AffStatus	status;
 	char		msg[256];
 	char		detail[512];
+	char		hint[256];
 } AffError;
 
 /*
@@ -56,10 +58,28 @@ extern AffStatus aff_fail(AffError *err, AffStatus status, const char *fmt,...)
 			__attribute__((format(printf, 3, 4)));
 extern AffStatus aff_detail(AffError *err, const char *fmt,...)
 			__attribute__((format(printf, 2, 3)));
+extern AffStatus aff_hint(AffError *err, const char *fmt,...)
+			__attribute__((format(printf, 2, 3)));
+extern double aff_clock(void);
+extern void aff_assert_failed(const char *cond, const char *file, int line)
+			__attribute__((noreturn));
 extern void *aff_alloc(const AffAllocator *a, size_t size);
 extern void *aff_alloc_array(const AffAllocator *a, size_t n, size_t elem);
 extern void aff_release(const AffAllocator *a, void *ptr);
 extern int	aff_mul_overflows(size_t a, size_t b, size_t *result);
+
+/*
+ * AFF_ASSERT(cond): a stated precondition or invariant of an engine
+ * function.  Checked only in builds with -DAFF_ASSERTS (the engine test
+ * program and the fuzzer), where a failure prints the condition, file and
+ * line and aborts; otherwise it compiles to nothing.
+ */
+#ifdef AFF_ASSERTS
+#define AFF_ASSERT(cond) \
+	((cond) ? (void) 0 : aff_assert_failed(#cond, __FILE__, __LINE__))
+#else
+#define AFF_ASSERT(cond) ((void) 0)
+#endif
 
 /* Method and option codes stored in the model header. */
 #define AFF_METHOD_IMPLICIT_ALS	1

@@ -270,7 +270,7 @@ row_system_times(const float *F, const double *G, int f, double lambda,
 }
 
 /*
- * cg_steps steps of conjugate gradient on the row's system, started from
+ * solver_steps steps of conjugate gradient on the row's system, started from
  * the current x (Takacs, Pilaszy, Tikk 2011).  Each step lowers the row's
  * quadratic objective, so the loss cannot rise between sweeps.
  */
@@ -336,7 +336,7 @@ solve_cg(const float *F, const double *G, int f, double lambda,
 AFF_KERNEL int
 aff_solve_row(const float *F, const double *gram, int f, double lambda,
 			  const int32_t *idx, const float *conf, int64_t len, int solver,
-			  int cg_steps, float *x, double *scratch)
+			  int solver_steps, float *x, double *scratch)
 {
 	double	   *xd = scratch + (size_t) f * f + 4 * (size_t) f;
 	int			k;
@@ -347,7 +347,7 @@ aff_solve_row(const float *F, const double *gram, int f, double lambda,
 	if (solver == AFF_SOLVER_CHOLESKY)
 		ok = solve_cholesky(F, gram, f, lambda, idx, conf, len, xd, scratch);
 	else
-		solve_cg(F, gram, f, lambda, idx, conf, len, cg_steps, xd, scratch);
+		solve_cg(F, gram, f, lambda, idx, conf, len, solver_steps, xd, scratch);
 	if (ok)
 		for (k = 0; k < f; k++)
 			x[k] = (float) xd[k];
@@ -480,7 +480,7 @@ half_sweep_block(void *arg, int thread_no, int64_t block_no, int64_t begin,
 		for (r = begin; r <= end; r++)
 			ptr[r - begin] = h->ptr[r] - base;
 		solve_cg_block(h->F, s->gram, f, s->p.regularization, ptr,
-					   h->idx + base, h->conf + base, end - begin, s->p.cg_steps,
+					   h->idx + base, h->conf + base, end - begin, s->p.solver_steps,
 					   h->out + (size_t) begin * f, scratch);
 		return;
 	}
@@ -490,7 +490,7 @@ half_sweep_block(void *arg, int thread_no, int64_t block_no, int64_t begin,
 
 		if (!aff_solve_row(h->F, s->gram, f, s->p.regularization,
 						   h->idx + lo, h->conf + lo, h->ptr[r + 1] - lo,
-						   s->p.solver, s->p.cg_steps,
+						   s->p.solver, s->p.solver_steps,
 						   h->out + (size_t) r * f, scratch))
 			atomic_store(&h->failed, 1);
 	}

@@ -15,7 +15,7 @@ typedef struct AffAlsParams
 	int			factors;
 	int			iterations;
 	int			solver;			/* AFF_SOLVER_* */
-	int			cg_steps;
+	int			solver_steps;
 	int			confidence;		/* AFF_CONFIDENCE_* */
 	int			threads;		/* >= 1, already resolved */
 	double		regularization;
@@ -55,7 +55,7 @@ extern void aff_gram(const float *F, int64_t n, int f, int threads,
 					 float *gram_f, double *gram);
 extern int	aff_solve_row(const float *F, const double *gram, int f,
 						  double lambda, const int32_t *idx, const float *conf,
-						  int64_t len, int solver, int cg_steps, float *x,
+						  int64_t len, int solver, int solver_steps, float *x,
 						  double *scratch);
 extern int	aff_solve_system(const float *F, const double *gram, int f,
 							 double lambda, const int32_t *idx, const float *conf,

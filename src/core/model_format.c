@@ -10,6 +10,7 @@
  */
 #include "model_format.h"
 #include "text_key.h"
+#include "method.h"
 
 #include <math.h>
 #include <string.h>
@@ -23,51 +24,85 @@ _Static_assert(sizeof(AffSection) == 24, "section entry must be 24 bytes");
 
 #define ALIGN8(x) (((x) + 7) & ~(uint64_t) 7)
 
+/*
+ * The sections.  Index = kind; entry 0 is unused.  A new kind gets a number
+ * in model_format.h, an entry here, a pointer in AffModelView (set in
+ * aff_model_view) and, if its content needs more than a count, a check in
+ * check_content.
+ */
+const AffSectionDef aff_section_defs[AFF_SEC_MAX + 1] = {
+	{0, NULL, 0, AFF_NEED_ALL, AFF_COUNT_FREE, 0, AFF_FORGET_KEEP},
+	{AFF_SEC_USER_KEYS, "user_keys", 8, AFF_NEED_ALL, AFF_COUNT_USERS, 0, AFF_FORGET_CUT_USER},
+	{AFF_SEC_ITEM_KEYS, "item_keys", 8, AFF_NEED_ALL, AFF_COUNT_ITEMS, 0, AFF_FORGET_KEEP},
+	{AFF_SEC_USER_FACTORS, "user_factors", 4, AFF_NEED_METHOD, AFF_COUNT_USERS_X_FACTORS, 0,
+	AFF_FORGET_CUT_USER_ROW},
+	{AFF_SEC_ITEM_FACTORS, "item_factors", 4, AFF_NEED_METHOD, AFF_COUNT_ITEMS_X_FACTORS, 0,
+	AFF_FORGET_KEEP},
+	{AFF_SEC_SEEN_PTR, "seen_ptr", 8, AFF_NEED_ALL, AFF_COUNT_USERS_PLUS_1, 0, AFF_FORGET_CUT_OFFSETS},
+	{AFF_SEC_SEEN_ITEMS, "seen_items", 4, AFF_NEED_ALL, AFF_COUNT_NNZ, 0, AFF_FORGET_CUT_SEEN},
+	{AFF_SEC_SEEN_WEIGHTS, "seen_weights", 4, AFF_NEED_ALL, AFF_COUNT_NNZ, 0, AFF_FORGET_CUT_SEEN},
+	{AFF_SEC_POPULARITY, "popularity", 4, AFF_NEED_ALL, AFF_COUNT_ITEMS, 0, AFF_FORGET_UNCOUNT},
+	{AFF_SEC_LOSS, "loss", 8, AFF_NEED_METHOD_ALLOW_ANY, AFF_COUNT_FREE, 0, AFF_FORGET_KEEP},
+	{AFF_SEC_SWEEP_SECONDS, "sweep_seconds", 8, AFF_NEED_METHOD_ALLOW_ANY, AFF_COUNT_SAME_AS,
+	AFF_SEC_LOSS, AFF_FORGET_KEEP},
+	{AFF_SEC_ITEM_WEIGHTS, "item_weights", 4, AFF_NEED_METHOD, AFF_COUNT_ITEMS_SQUARED, 0,
+	AFF_FORGET_KEEP},
+	{AFF_SEC_NEIGHBOR_PTR, "neighbor_ptr", 8, AFF_NEED_METHOD, AFF_COUNT_ITEMS_PLUS_1, 0,
+	AFF_FORGET_KEEP},
+	{AFF_SEC_NEIGHBOR_IDX, "neighbor_idx", 4, AFF_NEED_METHOD, AFF_COUNT_FREE, 0, AFF_FORGET_KEEP},
+	{AFF_SEC_NEIGHBOR_SIM, "neighbor_sim", 4, AFF_NEED_METHOD, AFF_COUNT_SAME_AS,
+	AFF_SEC_NEIGHBOR_IDX, AFF_FORGET_KEEP},
+	{AFF_SEC_USER_TEXT_OFF, "user_text_off", 8, AFF_NEED_TEXT, AFF_COUNT_USERS_PLUS_1, 0,
+	AFF_FORGET_CUT_OFFSETS},
+	{AFF_SEC_USER_TEXT, "user_text", 1, AFF_NEED_TEXT, AFF_COUNT_FREE, 0, AFF_FORGET_CUT_TEXT},
+	{AFF_SEC_ITEM_TEXT_OFF, "item_text_off", 8, AFF_NEED_TEXT, AFF_COUNT_ITEMS_PLUS_1, 0,
+	AFF_FORGET_KEEP},
+	{AFF_SEC_ITEM_TEXT, "item_text", 1, AFF_NEED_TEXT, AFF_COUNT_FREE, 0, AFF_FORGET_KEEP},
+};
+
 size_t
 aff_section_elem_size(int kind)
 {
-	switch (kind)
-	{
-		case AFF_SEC_USER_KEYS:
-		case AFF_SEC_ITEM_KEYS:
-		case AFF_SEC_SEEN_PTR:
-		case AFF_SEC_NEIGHBOR_PTR:
-		case AFF_SEC_USER_TEXT_OFF:
-		case AFF_SEC_ITEM_TEXT_OFF:
-		case AFF_SEC_LOSS:
-		case AFF_SEC_SWEEP_SECONDS:
-			return 8;
-		case AFF_SEC_USER_FACTORS:
-		case AFF_SEC_ITEM_FACTORS:
-		case AFF_SEC_SEEN_ITEMS:
-		case AFF_SEC_SEEN_WEIGHTS:
-		case AFF_SEC_POPULARITY:
-		case AFF_SEC_ITEM_WEIGHTS:
-		case AFF_SEC_NEIGHBOR_IDX:
-		case AFF_SEC_NEIGHBOR_SIM:
-			return 4;
-		case AFF_SEC_USER_TEXT:
-		case AFF_SEC_ITEM_TEXT:
-			return 1;
-	}
-	return 0;
+	if (kind < 1 || kind > AFF_SEC_MAX)
+		return 0;
+	return aff_section_defs[kind].elem_size;
 }
 
-const char *
-aff_method_name(int method)
+/*
+ * The count that section d must have in a model with header h (whose
+ * counts were checked to be in range) and section counts counts[];
+ * UINT64_MAX for a free count.
+ */
+uint64_t
+aff_section_expected_count(const AffSectionDef *d, const AffModelHeader *h,
+						   const uint64_t *counts)
 {
-	switch (method)
+	uint64_t	f = (uint64_t) h->factors;
+
+	switch (d->count)
 	{
-		case AFF_METHOD_IMPLICIT_ALS:
-			return "implicit_als";
-		case AFF_METHOD_POPULARITY:
-			return "popularity";
-		case AFF_METHOD_EASE:
-			return "ease";
-		case AFF_METHOD_ITEM_KNN:
-			return "item_knn";
+		case AFF_COUNT_USERS:
+			return (uint64_t) h->n_users;
+		case AFF_COUNT_ITEMS:
+			return (uint64_t) h->n_items;
+		case AFF_COUNT_USERS_PLUS_1:
+			return (uint64_t) h->n_users + 1;
+		case AFF_COUNT_ITEMS_PLUS_1:
+			return (uint64_t) h->n_items + 1;
+		case AFF_COUNT_USERS_X_FACTORS:
+			return (uint64_t) h->n_users * f;
+		case AFF_COUNT_ITEMS_X_FACTORS:
+			return (uint64_t) h->n_items * f;
+		case AFF_COUNT_ITEMS_SQUARED:
+			return (uint64_t) h->n_items * (uint64_t) h->n_items;
+		case AFF_COUNT_NNZ:
+			return (uint64_t) h->nnz;
+		case AFF_COUNT_SAME_AS:
+			return counts[d->same_as];
+		case AFF_COUNT_FREE:
+			break;
 	}
-	return "unknown";
+	return UINT64_MAX;
 }
 
 /* A word-at-a-time multiply-xorshift hash: detects damage, not attacks. */
@@ -199,6 +234,29 @@ aff_model_write(const AffModelParts *parts, uint8_t *buf, uint64_t size)
 	memcpy(buf + offsetof(AffModelHeader, checksum), &h.checksum, 8);
 }
 
+/*
+ * Whether a model of method meth and header h needs section d (1), may
+ * carry it (0) or may not (-1).
+ */
+static int
+section_need(const AffSectionDef *d, const AffMethod *meth, const AffModelHeader *h)
+{
+	bool		listed = (meth->sections & (1u << d->kind)) != 0;
+
+	switch (d->need)
+	{
+		case AFF_NEED_ALL:
+			return 1;
+		case AFF_NEED_TEXT:
+			return h->key_type == AFF_KEYS_TEXT ? 1 : -1;
+		case AFF_NEED_METHOD:
+			return listed ? 1 : -1;
+		case AFF_NEED_METHOD_ALLOW_ANY:
+			return listed ? 1 : 0;
+	}
+	return -1;
+}
+
 static AffStatus
 corrupt(AffError *err, const char *fmt, uint64_t a, uint64_t b)
 {
@@ -220,8 +278,10 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 	const void *sec[AFF_SEC_MAX + 1] = {0};
 	uint64_t	cnt[AFF_SEC_MAX + 1] = {0};
 	uint64_t	data_start;
+	const AffMethod *meth;
 	int			i;
 	int			j;
+	int			k;
 
 	memset(v, 0, sizeof(*v));
 	if (((uintptr_t) buf & 7) != 0)
@@ -280,75 +340,55 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 		cnt[s->kind] = s->count;
 	}
 
-	if (h->method < AFF_METHOD_IMPLICIT_ALS || h->method > AFF_METHOD_ITEM_KNN)
+	if ((meth = aff_method_by_code(h->method)) == NULL)
 		return corrupt(err, "Unknown method code %llu.", h->method, 0);
 	if (h->key_type != AFF_KEYS_BIGINT && h->key_type != AFF_KEYS_TEXT)
 		return corrupt(err, "Unknown key type code %llu.", h->key_type, 0);
-	if (h->key_type == AFF_KEYS_TEXT &&
-		(!sec[AFF_SEC_USER_TEXT_OFF] || !sec[AFF_SEC_USER_TEXT] ||
-		 !sec[AFF_SEC_ITEM_TEXT_OFF] || !sec[AFF_SEC_ITEM_TEXT] ||
-		 cnt[AFF_SEC_USER_TEXT_OFF] != (uint64_t) h->n_users + 1 ||
-		 cnt[AFF_SEC_ITEM_TEXT_OFF] != (uint64_t) h->n_items + 1))
-		return corrupt(err, "Text key dictionaries are missing or hold %llu / %llu offsets.",
-					   cnt[AFF_SEC_USER_TEXT_OFF], cnt[AFF_SEC_ITEM_TEXT_OFF]);
 	if (h->n_users < 1 || h->n_items < 1 || h->nnz < 1 ||
 		h->n_users > AFF_MAX_ENTITIES || h->n_items > AFF_MAX_ENTITIES)
 		return corrupt(err, "Bad counts: %llu users, %llu items.",
 					   (uint64_t) h->n_users, (uint64_t) h->n_items);
-	if (cnt[AFF_SEC_USER_KEYS] != (uint64_t) h->n_users || !sec[AFF_SEC_USER_KEYS] ||
-		cnt[AFF_SEC_ITEM_KEYS] != (uint64_t) h->n_items || !sec[AFF_SEC_ITEM_KEYS])
-		return corrupt(err, "Key dictionaries are missing or hold %llu users / %llu items.",
-					   cnt[AFF_SEC_USER_KEYS], cnt[AFF_SEC_ITEM_KEYS]);
-	if (cnt[AFF_SEC_SEEN_PTR] != (uint64_t) h->n_users + 1 ||
-		cnt[AFF_SEC_SEEN_ITEMS] != (uint64_t) h->nnz ||
-		cnt[AFF_SEC_SEEN_WEIGHTS] != (uint64_t) h->nnz ||
-		!sec[AFF_SEC_SEEN_PTR] || !sec[AFF_SEC_SEEN_ITEMS] || !sec[AFF_SEC_SEEN_WEIGHTS])
-		return corrupt(err, "Training lists are missing or hold %llu offsets / %llu items.",
-					   cnt[AFF_SEC_SEEN_PTR], cnt[AFF_SEC_SEEN_ITEMS]);
-	if (cnt[AFF_SEC_POPULARITY] != (uint64_t) h->n_items || !sec[AFF_SEC_POPULARITY])
-		return corrupt(err, "Popularity holds %llu entries for %llu items.",
-					   cnt[AFF_SEC_POPULARITY], (uint64_t) h->n_items);
-	if (cnt[AFF_SEC_LOSS] != cnt[AFF_SEC_SWEEP_SECONDS])
-		return corrupt(err, "%llu losses but %llu sweep timings.",
-					   cnt[AFF_SEC_LOSS], cnt[AFF_SEC_SWEEP_SECONDS]);
-	if (h->method == AFF_METHOD_IMPLICIT_ALS)
+	for (k = 1; k <= AFF_SEC_MAX; k++)
+		if (sec[k] != NULL && section_need(&aff_section_defs[k], meth, h) < 0)
+			return corrupt(err, "The value holds sections that its method (code %llu) or key type (code %llu) does not use.",
+						   h->method, h->key_type);
+	if (meth->has_factors && (h->factors < 1 || h->factors > AFF_MAX_FACTORS))
+		return corrupt(err, "Factor count %llu is outside 1..%llu.",
+					   (uint64_t) (int64_t) h->factors, AFF_MAX_FACTORS);
+	if (!meth->has_factors && h->factors != 0)
 	{
-		uint64_t	f = (uint64_t) h->factors;
+		aff_fail(err, AFF_ERR_CORRUPT, "invalid affinity.model value");
+		return aff_detail(err, "Method \"%s\" has no factors, but the header says %lld.",
+						  meth->name, (long long) h->factors);
+	}
+	for (k = 1; k <= AFF_SEC_MAX; k++)
+	{
+		const AffSectionDef *d = &aff_section_defs[k];
+		uint64_t	want;
 
-		if (h->factors < 1 || h->factors > AFF_MAX_FACTORS)
-			return corrupt(err, "Factor count %llu is outside 1..%llu.",
-						   (uint64_t) (int64_t) h->factors, AFF_MAX_FACTORS);
-		if (!sec[AFF_SEC_USER_FACTORS] || !sec[AFF_SEC_ITEM_FACTORS] ||
-			cnt[AFF_SEC_USER_FACTORS] != f * (uint64_t) h->n_users ||
-			cnt[AFF_SEC_ITEM_FACTORS] != f * (uint64_t) h->n_items)
-			return corrupt(err, "Factor matrices are missing or hold %llu / %llu numbers.",
-						   cnt[AFF_SEC_USER_FACTORS], cnt[AFF_SEC_ITEM_FACTORS]);
+		if (sec[k] == NULL)
+		{
+			if (section_need(d, meth, h) > 0)
+			{
+				aff_fail(err, AFF_ERR_CORRUPT, "invalid affinity.model value");
+				return aff_detail(err, "The value has no \"%s\" section, which a model of method \"%s\" with %s keys needs.",
+								  d->name, meth->name,
+								  h->key_type == AFF_KEYS_TEXT ? "text" : "bigint");
+			}
+			continue;
+		}
+		want = aff_section_expected_count(d, h, cnt);
+		if (want != UINT64_MAX && cnt[k] != want)
+		{
+			aff_fail(err, AFF_ERR_CORRUPT, "invalid affinity.model value");
+			return aff_detail(err, "Section \"%s\" holds %llu elements; this model needs %llu.",
+							  d->name, (unsigned long long) cnt[k], (unsigned long long) want);
+		}
 	}
 
-	/* sections of another method or key type are not allowed either */
-	if ((h->method != AFF_METHOD_IMPLICIT_ALS &&
-		 (sec[AFF_SEC_USER_FACTORS] || sec[AFF_SEC_ITEM_FACTORS])) ||
-		(h->method != AFF_METHOD_EASE && sec[AFF_SEC_ITEM_WEIGHTS]) ||
-		(h->method != AFF_METHOD_ITEM_KNN &&
-		 (sec[AFF_SEC_NEIGHBOR_PTR] || sec[AFF_SEC_NEIGHBOR_IDX] || sec[AFF_SEC_NEIGHBOR_SIM])) ||
-		(h->key_type != AFF_KEYS_TEXT &&
-		 (sec[AFF_SEC_USER_TEXT_OFF] || sec[AFF_SEC_USER_TEXT] ||
-		  sec[AFF_SEC_ITEM_TEXT_OFF] || sec[AFF_SEC_ITEM_TEXT])))
-		return corrupt(err, "The value holds sections that its method (code %llu) or key type (code %llu) does not use.",
-					   h->method, h->key_type);
-	if (h->method == AFF_METHOD_EASE &&
-		(!sec[AFF_SEC_ITEM_WEIGHTS] ||
-		 cnt[AFF_SEC_ITEM_WEIGHTS] != (uint64_t) h->n_items * (uint64_t) h->n_items))
-		return corrupt(err, "The item weight matrix is missing or holds %llu numbers for %llu items.",
-					   cnt[AFF_SEC_ITEM_WEIGHTS], (uint64_t) h->n_items);
-	if (h->method == AFF_METHOD_ITEM_KNN &&
-		(!sec[AFF_SEC_NEIGHBOR_PTR] || !sec[AFF_SEC_NEIGHBOR_IDX] || !sec[AFF_SEC_NEIGHBOR_SIM] ||
-		 cnt[AFF_SEC_NEIGHBOR_PTR] != (uint64_t) h->n_items + 1 ||
-		 cnt[AFF_SEC_NEIGHBOR_IDX] != cnt[AFF_SEC_NEIGHBOR_SIM]))
-		return corrupt(err, "Neighbour lists are missing or hold %llu offsets for %llu items.",
-					   cnt[AFF_SEC_NEIGHBOR_PTR], (uint64_t) h->n_items);
-
 	v->h = h;
+	memcpy(v->sections, sec, sizeof(v->sections));
+	memcpy(v->counts, cnt, sizeof(v->counts));
 	v->user_text_off = sec[AFF_SEC_USER_TEXT_OFF];
 	v->user_text = sec[AFF_SEC_USER_TEXT];
 	v->item_text_off = sec[AFF_SEC_ITEM_TEXT_OFF];
@@ -400,14 +440,17 @@ first_non_finite_f(const float *x, uint64_t n)
 static AffStatus
 check_options(const AffModelHeader *h, AffError *err)
 {
+	const AffMethod *meth = aff_method_by_code(h->method);
+
 	if (!isfinite(h->regularization) || h->regularization < 0 ||
 		!isfinite(h->alpha) || h->alpha < 0 ||
 		!isfinite(h->epsilon) || h->epsilon <= 0 ||
 		!isfinite(h->fit_seconds) || h->fit_seconds < 0)
 		return corrupt(err, "Options or timings hold out-of-range numbers.", 0, 0);
-	if (h->method == AFF_METHOD_IMPLICIT_ALS &&
-		((h->solver != AFF_SOLVER_CG && h->solver != AFF_SOLVER_CHOLESKY) ||
-		 (h->confidence != AFF_CONFIDENCE_LINEAR && h->confidence != AFF_CONFIDENCE_LOG)))
+	if ((meth->options & AFF_OPT_BIT(AFF_OPT_SOLVER) &&
+		 h->solver != AFF_SOLVER_CG && h->solver != AFF_SOLVER_CHOLESKY) ||
+		(meth->options & AFF_OPT_BIT(AFF_OPT_CONFIDENCE) &&
+		 h->confidence != AFF_CONFIDENCE_LINEAR && h->confidence != AFF_CONFIDENCE_LOG))
 		return corrupt(err, "Unknown solver %llu or confidence %llu.",
 					   (uint64_t) h->solver, (uint64_t) h->confidence);
 	return AFF_OK;
@@ -455,7 +498,7 @@ check_content(const AffModelView *v, AffError *err)
 		if (!isfinite(v->loss[j]) || !isfinite(v->sweep_seconds[j]))
 			return corrupt(err, "Loss or timing of sweep %llu is not finite.",
 						   (uint64_t) j + 1, 0);
-	if (h->method == AFF_METHOD_IMPLICIT_ALS)
+	if (v->user_factors != NULL && v->item_factors != NULL)
 	{
 		uint64_t	f = (uint64_t) h->factors;
 
@@ -472,7 +515,7 @@ check_content(const AffModelView *v, AffError *err)
 		 aff_check_text_keys(h->text_hash_key, v->item_keys, h->n_items, v->item_text_off,
 							 v->item_text, v->item_text_len, "item", err) != AFF_OK))
 		return err->status;
-	if (h->method == AFF_METHOD_EASE)
+	if (v->item_weights != NULL)
 	{
 		uint64_t	n = (uint64_t) h->n_items * (uint64_t) h->n_items;
 
@@ -480,7 +523,7 @@ check_content(const AffModelView *v, AffError *err)
 			return corrupt(err, "Item weight %llu of item index %llu is not finite.",
 						   (uint64_t) bad % h->n_items, (uint64_t) bad / h->n_items);
 	}
-	if (h->method == AFF_METHOD_ITEM_KNN)
+	if (v->neighbor_ptr != NULL)
 	{
 		int64_t		total = (int64_t) (v->neighbor_ptr[h->n_items]);
 

@@ -65,7 +65,7 @@ typedef struct AffModelHeader
 	int32_t		factors;
 	int32_t		iterations;
 	int32_t		solver;
-	int32_t		cg_steps;
+	int32_t		solver_steps;
 	int32_t		confidence;
 	int32_t		threads;
 	int32_t		min_user_interactions;
@@ -132,6 +132,9 @@ typedef struct AffModelView
 	const char *item_text;
 	uint64_t	user_text_len;
 	uint64_t	item_text_len;
+	/* every section by kind (NULL when absent), with its element count */
+	const void *sections[AFF_SEC_MAX + 1];
+	uint64_t	counts[AFF_SEC_MAX + 1];
 } AffModelView;
 
 /* What an encoder is given: header fields filled, arrays by section kind. */
@@ -142,6 +145,58 @@ typedef struct AffModelParts
 	uint64_t	count[AFF_SEC_MAX + 1];
 } AffModelParts;
 
+/*
+ * The description of each section kind, the one place that says what a
+ * model holds.  Size, view, validation, forget_user and describe() read it.
+ */
+typedef enum AffSectionNeed
+{
+	AFF_NEED_ALL,				/* every model */
+	AFF_NEED_TEXT,				/* models with text keys (and only those) */
+	AFF_NEED_METHOD,			/* the methods whose AffMethod.sections list it */
+	AFF_NEED_METHOD_ALLOW_ANY	/* as METHOD, but any model may carry it */
+} AffSectionNeed;
+
+typedef enum AffSectionCount
+{
+	AFF_COUNT_USERS,			/* n_users */
+	AFF_COUNT_ITEMS,			/* n_items */
+	AFF_COUNT_USERS_PLUS_1,		/* n_users + 1 (offsets) */
+	AFF_COUNT_ITEMS_PLUS_1,
+	AFF_COUNT_USERS_X_FACTORS,	/* n_users * factors */
+	AFF_COUNT_ITEMS_X_FACTORS,
+	AFF_COUNT_ITEMS_SQUARED,	/* n_items^2 */
+	AFF_COUNT_NNZ,				/* nnz */
+	AFF_COUNT_FREE,				/* any count (content checks bound it) */
+	AFF_COUNT_SAME_AS			/* the count of section same_as */
+} AffSectionCount;
+
+typedef enum AffSectionForget
+{
+	AFF_FORGET_KEEP,			/* forget_user copies it as it is */
+	AFF_FORGET_CUT_USER,		/* one element per user: the user's is cut */
+	AFF_FORGET_CUT_USER_ROW,	/* factors elements per user: the user's row is cut */
+	AFF_FORGET_CUT_SEEN,		/* one element per training pair: the user's are cut */
+	AFF_FORGET_CUT_TEXT,		/* the user's text bytes are cut */
+	AFF_FORGET_CUT_OFFSETS,		/* offsets per user: the user's entry cut, later ones shifted */
+	AFF_FORGET_UNCOUNT			/* per-item user counts: the user's items count one less */
+} AffSectionForget;
+
+typedef struct AffSectionDef
+{
+	int			kind;
+	const char *name;
+	uint32_t	elem_size;
+	AffSectionNeed need;
+	AffSectionCount count;
+	int			same_as;		/* AFF_COUNT_SAME_AS: that kind */
+	AffSectionForget forget;
+} AffSectionDef;
+
+extern const AffSectionDef aff_section_defs[AFF_SEC_MAX + 1];
+extern uint64_t aff_section_expected_count(const AffSectionDef *d,
+										   const AffModelHeader *h,
+										   const uint64_t *counts);
 extern size_t aff_section_elem_size(int kind);
 extern AffStatus aff_model_size(const AffModelParts *parts, uint64_t *size,
 								AffError *err);

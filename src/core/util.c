@@ -6,7 +6,9 @@
 
 #include <stdarg.h>
 #include <stdio.h>
+#include <stdlib.h>
 #include <string.h>
+#include <time.h>
 
 /*
  * Record a failure: status and message.  Returns the status so callers can
@@ -25,6 +27,7 @@ aff_fail(AffError *err, AffStatus status, const char *fmt,...)
 	vsnprintf(err->msg, sizeof(err->msg), fmt, ap);
 	va_end(ap);
 	err->detail[0] = '\0';
+	err->hint[0] = '\0';
 	return status;
 }
 
@@ -40,6 +43,39 @@ aff_detail(AffError *err, const char *fmt,...)
 	vsnprintf(err->detail, sizeof(err->detail), fmt, ap);
 	va_end(ap);
 	return err->status;
+}
+
+/* Attach a hint (what to do about it) to the failure recorded in err. */
+AffStatus
+aff_hint(AffError *err, const char *fmt,...)
+{
+	va_list		ap;
+
+	if (err == NULL)
+		return AFF_OK;
+	va_start(ap, fmt);
+	vsnprintf(err->hint, sizeof(err->hint), fmt, ap);
+	va_end(ap);
+	return err->status;
+}
+
+/* Seconds on a monotonic clock, for timings (differences only). */
+double
+aff_clock(void)
+{
+	struct timespec ts;
+
+	clock_gettime(CLOCK_MONOTONIC, &ts);
+	return (double) ts.tv_sec + (double) ts.tv_nsec * 1e-9;
+}
+
+/* AFF_ASSERT's failure path: say what failed, where, and stop. */
+void
+aff_assert_failed(const char *cond, const char *file, int line)
+{
+	fprintf(stderr, "affinity engine assertion failed: %s (%s:%d)\n", cond, file, line);
+	fflush(stderr);
+	abort();
 }
 
 /* Returns 1 and leaves *result alone when a * b overflows size_t. */

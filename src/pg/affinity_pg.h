@@ -13,10 +13,13 @@
 #include "postgres.h"
 #include "fmgr.h"
 #include "portability/instr_time.h"
+#include "lib/stringinfo.h"
 #include "utils/jsonb.h"
 
 #include "../core/aff_core.h"
+#include "../core/interactions.h"
 #include "../core/model_format.h"
+#include "../core/method.h"
 
 /* GUC variables (guc.c) */
 extern int	affinity_threads;
@@ -28,29 +31,13 @@ extern double affinity_alpha;
 extern int	affinity_max_fit_memory_mb;
 extern bool affinity_verbose;
 
-/* Fit options after merging jsonb, GUCs and built-in defaults (options.c). */
-typedef struct FitOptions
-{
-	int			method;
-	int			factors;
-	int			iterations;
-	int			solver;
-	int			cg_steps;
-	int			confidence;
-	int			threads;		/* resolved: >= 1 */
-	int			min_user_interactions;
-	int			min_item_interactions;
-	int			neighbors;
-	int			max_items;
-	double		regularization;
-	double		alpha;
-	double		epsilon;
-	int64		seed;
-	bool		verbose;
-} FitOptions;
+/*
+ * Fit options after merging jsonb, GUCs and built-in defaults (options.c):
+ * the engine's AffOptions (core/method.h), threads resolved to >= 1.
+ */
+typedef AffOptions FitOptions;
 
 extern void fit_options_parse(Jsonb *options, FitOptions *o);
-extern double method_default_regularization(int method);
 extern int	resolve_threads(int requested);
 
 /* Engine glue (model_io.c) */
@@ -88,6 +75,17 @@ extern void model_fetch(FunctionCallInfo fcinfo, int argno, AffModelView *view);
 extern const double *cached_gram(CachedModel *e);
 extern const float *cached_norms(CachedModel *e, bool users);
 extern void cache_stats(int *entries, int64 *bytes, int64 *hits, int64 *loads);
+
+/* Calling methods (method_glue.c) */
+extern void raise_engine_error(const AffError *err) pg_attribute_noreturn();
+extern void method_fit(const AffMatrix *m, const FitOptions *o,
+					   const AffAllocator *a, AffModelParts *parts);
+extern const AffMethod *model_method(const AffModelView *v);
+#define SERVE_GRAM	1			/* derived data a serving call needs */
+#define SERVE_ITEM_NORMS 2
+#define SERVE_USER_NORMS 4
+extern void serve_context(CachedModel *e, AffServe *s, AffAllocator *a, int needs);
+extern void describe_options(StringInfo s, const AffModelHeader *h);
 
 /* jsonb assembly (serving.c) */
 extern Jsonb *jsonb_from_cstring(const char *s);

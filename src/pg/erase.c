@@ -24,8 +24,72 @@ copy_without(const void *src, int64 n, size_t elem, int64 skip_from, int64 skip_
 	return dst;
 }
 
+/* Offsets per user without user u's entry: later ones shift down by its span. */
+static int64 *
+offsets_without(const int64 *off, int64 n_users, int64 u)
+{
+	int64	   *out = palloc_extended(sizeof(int64) * n_users, MCXT_ALLOC_HUGE);
+	int64		span = off[u + 1] - off[u];
+	int64		j;
+
+	for (j = 0; j < n_users; j++)
+		out[j] = j < u ? off[j] : off[j + 1] - span;
+	return out;
+}
+
+/*
+ * Section k of the copy, as the section table says forget_user treats it;
+ * *count gets its element count.
+ */
+static const void *
+forget_section(const AffModelView *v, int k, int64 u, uint64 *count)
+{
+	const AffSectionDef *d = &aff_section_defs[k];
+	const AffModelHeader *h = v->h;
+	const void *src = v->sections[k];
+	uint64		n = v->counts[k];
+	int64		lo = v->seen_ptr[u];
+	int64		hi = v->seen_ptr[u + 1];
+	float	   *pop;
+	int64		j;
+
+	*count = n;
+	switch (d->forget)
+	{
+		case AFF_FORGET_KEEP:
+			return src;
+		case AFF_FORGET_CUT_USER:
+			*count = n - 1;
+			return copy_without(src, n, d->elem_size, u, u + 1);
+		case AFF_FORGET_CUT_USER_ROW:
+			*count = n - h->factors;
+			return copy_without(src, n, d->elem_size, u * h->factors, (u + 1) * h->factors);
+		case AFF_FORGET_CUT_SEEN:
+			*count = n - (hi - lo);
+			return copy_without(src, n, d->elem_size, lo, hi);
+		case AFF_FORGET_CUT_TEXT:
+			*count = n - (v->user_text_off[u + 1] - v->user_text_off[u]);
+			return copy_without(src, n, 1, v->user_text_off[u], v->user_text_off[u + 1]);
+		case AFF_FORGET_CUT_OFFSETS:
+			*count = n - 1;
+			return offsets_without(src, h->n_users, u);
+		case AFF_FORGET_UNCOUNT:
+			pop = palloc_extended(sizeof(float) * n, MCXT_ALLOC_HUGE);
+			memcpy(pop, src, sizeof(float) * n);
+			for (j = lo; j < hi; j++)
+				pop[v->seen_items[j]] = Max(pop[v->seen_items[j]] - 1.0f, 0.0f);
+			return pop;
+	}
+	elog(ERROR, "unknown forget rule for section kind %d", k);
+	return NULL;
+}
+
 PG_FUNCTION_INFO_V1(forget_user);
 
+/*
+ * forget_user(model, user_id) -> model: every section through the section
+ * table's forget rule, the header's counts reduced.
+ */
 Datum
 forget_user(PG_FUNCTION_ARGS)
 {
@@ -33,11 +97,6 @@ forget_user(PG_FUNCTION_ARGS)
 	AffModelParts parts;
 	const AffModelHeader *h;
 	int64		u;
-	int64		lo;
-	int64		hi;
-	int64	   *ptr;
-	float	   *pop;
-	int64		j;
 	int			k;
 
 	model_fetch(fcinfo, 0, &v);
@@ -51,80 +110,13 @@ forget_user(PG_FUNCTION_ARGS)
 				 errmsg("cannot forget the only user of a model"),
 				 errdetail("The user asked for is the model's one user."),
 				 errhint("Drop the model instead.")));
-	lo = v.seen_ptr[u];
-	hi = v.seen_ptr[u + 1];
 
 	memset(&parts, 0, sizeof(parts));
 	parts.h = *h;
 	parts.h.n_users = h->n_users - 1;
-	parts.h.nnz = h->nnz - (hi - lo);
-
-	/* every section as it was, then the user's parts cut out */
-	{
-		const void *secs[AFF_SEC_MAX + 1] = {0};
-
-		secs[AFF_SEC_ITEM_KEYS] = v.item_keys;
-		secs[AFF_SEC_ITEM_FACTORS] = v.item_factors;
-		secs[AFF_SEC_LOSS] = v.loss;
-		secs[AFF_SEC_SWEEP_SECONDS] = v.sweep_seconds;
-		secs[AFF_SEC_ITEM_WEIGHTS] = v.item_weights;
-		secs[AFF_SEC_NEIGHBOR_PTR] = v.neighbor_ptr;
-		secs[AFF_SEC_NEIGHBOR_IDX] = v.neighbor_idx;
-		secs[AFF_SEC_NEIGHBOR_SIM] = v.neighbor_sim;
-		for (k = 1; k <= AFF_SEC_MAX; k++)
-			parts.data[k] = secs[k];
-		parts.count[AFF_SEC_ITEM_KEYS] = h->n_items;
-		parts.count[AFF_SEC_ITEM_FACTORS] = v.item_factors ? (uint64) h->n_items * h->factors : 0;
-		parts.count[AFF_SEC_LOSS] = v.loss ? v.n_sweeps : 0;
-		parts.count[AFF_SEC_SWEEP_SECONDS] = v.sweep_seconds ? v.n_sweeps : 0;
-		parts.count[AFF_SEC_ITEM_WEIGHTS] = v.item_weights ? (uint64) h->n_items * h->n_items : 0;
-		parts.count[AFF_SEC_NEIGHBOR_PTR] = v.neighbor_ptr ? h->n_items + 1 : 0;
-		parts.count[AFF_SEC_NEIGHBOR_IDX] = v.neighbor_count;
-		parts.count[AFF_SEC_NEIGHBOR_SIM] = v.neighbor_count;
-	}
-	parts.data[AFF_SEC_USER_KEYS] = copy_without(v.user_keys, h->n_users, sizeof(int64), u, u + 1);
-	parts.count[AFF_SEC_USER_KEYS] = h->n_users - 1;
-	if (v.user_factors)
-	{
-		parts.data[AFF_SEC_USER_FACTORS] =
-			copy_without(v.user_factors, h->n_users * h->factors, sizeof(float),
-						 u * h->factors, (u + 1) * h->factors);
-		parts.count[AFF_SEC_USER_FACTORS] = (uint64) (h->n_users - 1) * h->factors;
-	}
-	parts.data[AFF_SEC_SEEN_ITEMS] = copy_without(v.seen_items, h->nnz, sizeof(int32), lo, hi);
-	parts.data[AFF_SEC_SEEN_WEIGHTS] = copy_without(v.seen_weights, h->nnz, sizeof(float), lo, hi);
-	parts.count[AFF_SEC_SEEN_ITEMS] = parts.count[AFF_SEC_SEEN_WEIGHTS] = h->nnz - (hi - lo);
-
-	ptr = palloc_extended(sizeof(int64) * h->n_users, MCXT_ALLOC_HUGE);
-	for (j = 0; j < h->n_users; j++)
-		ptr[j] = j < u ? v.seen_ptr[j] : v.seen_ptr[j + 1] - (hi - lo);
-	parts.data[AFF_SEC_SEEN_PTR] = ptr;
-	parts.count[AFF_SEC_SEEN_PTR] = h->n_users;
-
-	if (h->key_type == AFF_KEYS_TEXT)
-	{
-		int64		tlo = v.user_text_off[u];
-		int64		thi = v.user_text_off[u + 1];
-		int64	   *toff = palloc_extended(sizeof(int64) * h->n_users, MCXT_ALLOC_HUGE);
-
-		for (j = 0; j < h->n_users; j++)
-			toff[j] = j < u ? v.user_text_off[j] : v.user_text_off[j + 1] - (thi - tlo);
-		parts.data[AFF_SEC_USER_TEXT_OFF] = toff;
-		parts.count[AFF_SEC_USER_TEXT_OFF] = h->n_users;
-		parts.data[AFF_SEC_USER_TEXT] = copy_without(v.user_text, v.user_text_len, 1, tlo, thi);
-		parts.count[AFF_SEC_USER_TEXT] = v.user_text_len - (thi - tlo);
-		parts.data[AFF_SEC_ITEM_TEXT_OFF] = v.item_text_off;
-		parts.count[AFF_SEC_ITEM_TEXT_OFF] = h->n_items + 1;
-		parts.data[AFF_SEC_ITEM_TEXT] = v.item_text;
-		parts.count[AFF_SEC_ITEM_TEXT] = v.item_text_len;
-	}
-
-	pop = palloc_extended(sizeof(float) * h->n_items, MCXT_ALLOC_HUGE);
-	memcpy(pop, v.popularity, sizeof(float) * h->n_items);
-	for (j = lo; j < hi; j++)
-		pop[v.seen_items[j]] = Max(pop[v.seen_items[j]] - 1.0f, 0.0f);
-	parts.data[AFF_SEC_POPULARITY] = pop;
-	parts.count[AFF_SEC_POPULARITY] = h->n_items;
-
+	parts.h.nnz = h->nnz - (v.seen_ptr[u + 1] - v.seen_ptr[u]);
+	for (k = 1; k <= AFF_SEC_MAX; k++)
+		if (v.sections[k] != NULL)
+			parts.data[k] = forget_section(&v, k, u, &parts.count[k]);
 	PG_RETURN_POINTER(model_build(&parts));
 }

@@ -33,10 +33,8 @@
 #include "utils/ps_status.h"
 #include "utils/memutils.h"
 
-#include "../core/als.h"
 #include "../core/interactions.h"
 #include "text_keys.h"
-#include "weights.h"
 
 typedef struct FitState
 {
@@ -696,51 +694,19 @@ check_memory(const FitState *st, double n_rows, double users, double items,
 			 errhint("Raise affinity.max_fit_memory, lower factors, or fit on fewer rows.")));
 }
 
-/* Header fields common to every method. */
+/*
+ * Header fields and common sections (the engine's aff_fit_header), then
+ * what only the aggregate knows: the rows it read and skipped.
+ */
 static void
 fill_header(AffModelParts *parts, const FitState *st, const AffMatrix *m)
 {
 	AffModelHeader *h = &parts->h;
-	const FitOptions *o = &st->opts;
 
-	memset(parts, 0, sizeof(*parts));
-	h->method = (uint16) o->method;
-	h->key_type = st->text_keys ? AFF_KEYS_TEXT : AFF_KEYS_BIGINT;
-	h->n_users = m->n_users;
-	h->n_items = m->n_items;
-	h->nnz = m->nnz;
-	h->factors = o->method == AFF_METHOD_IMPLICIT_ALS ? o->factors : 0;
-	h->iterations = o->iterations;
-	h->solver = o->solver;
-	h->cg_steps = o->cg_steps;
-	h->confidence = o->confidence;
-	h->threads = o->threads;
-	h->min_user_interactions = o->min_user_interactions;
-	h->min_item_interactions = o->min_item_interactions;
-	h->neighbors = o->neighbors;
-	h->max_items = o->max_items;
-	h->regularization = o->regularization;
-	h->alpha = o->alpha;
-	h->epsilon = o->epsilon;
-	h->seed = o->seed;
+	aff_fit_header(parts, &st->opts, m, st->text_keys ? AFF_KEYS_TEXT : AFF_KEYS_BIGINT);
 	h->rows_read = st->rows_read;
 	h->rows_skipped_null = st->rows_null;
 	h->rows_skipped_zero = st->rows_zero;
-	h->duplicates_summed = m->duplicates_summed;
-	h->dropped_users = m->dropped_users;
-	h->dropped_items = m->dropped_items;
-	h->dropped_interactions = m->dropped_interactions;
-
-	parts->data[AFF_SEC_USER_KEYS] = m->user_keys;
-	parts->count[AFF_SEC_USER_KEYS] = m->n_users;
-	parts->data[AFF_SEC_ITEM_KEYS] = m->item_keys;
-	parts->count[AFF_SEC_ITEM_KEYS] = m->n_items;
-	parts->data[AFF_SEC_SEEN_PTR] = m->row_ptr;
-	parts->count[AFF_SEC_SEEN_PTR] = m->n_users + 1;
-	parts->data[AFF_SEC_SEEN_ITEMS] = m->row_idx;
-	parts->count[AFF_SEC_SEEN_ITEMS] = m->nnz;
-	parts->data[AFF_SEC_SEEN_WEIGHTS] = m->row_val;
-	parts->count[AFF_SEC_SEEN_WEIGHTS] = m->nnz;
 }
 
 /* The text dictionaries of a text-key fit, in the matrix's key order. */
@@ -783,60 +749,6 @@ static void
 show_phase(const char *phase)
 {
 	set_ps_display(phase);
-}
-
-/* Run the ALS sweeps, reporting progress; fills the factor sections. */
-static void
-run_als(const FitState *st, const AffMatrix *m, AffModelParts *parts,
-		AffAllocator *a, AffAls *als)
-{
-	const FitOptions *o = &st->opts;
-	AffAlsParams p;
-	AffError	err;
-	double	   *loss = palloc(sizeof(double) * o->iterations);
-	double	   *secs = palloc(sizeof(double) * o->iterations);
-	double		total = 0;
-	int			s;
-
-	p.factors = o->factors;
-	p.iterations = o->iterations;
-	p.solver = o->solver;
-	p.cg_steps = o->cg_steps;
-	p.confidence = o->confidence;
-	p.threads = o->threads;
-	p.regularization = o->regularization;
-	p.alpha = o->alpha;
-	p.epsilon = o->epsilon;
-	p.seed = (uint64_t) o->seed;
-	if (aff_als_init(als, m, &p, a, &err) != AFF_OK)
-		report_engine_error(&err);
-
-	for (s = 0; s < o->iterations; s++)
-	{
-		instr_time	t0;
-		AffStatus	rc;
-
-		CHECK_FOR_INTERRUPTS();
-		show_phase(psprintf("affinity.fit sweep %d of %d", s + 1, o->iterations));
-		INSTR_TIME_SET_CURRENT(t0);
-		rc = aff_als_sweep(als, &loss[s], engine_poll, NULL, &err);
-		engine_check(rc, &err);
-		secs[s] = seconds_since(t0);
-		total += secs[s];
-		if (o->verbose)
-			ereport(NOTICE,
-					(errmsg("affinity.fit sweep %d of %d: loss %.6g, %.3f s, about %.1f s left",
-							s + 1, o->iterations, loss[s], secs[s],
-							total / (s + 1) * (o->iterations - s - 1))));
-	}
-	parts->data[AFF_SEC_USER_FACTORS] = als->X;
-	parts->count[AFF_SEC_USER_FACTORS] = (uint64) m->n_users * o->factors;
-	parts->data[AFF_SEC_ITEM_FACTORS] = als->Y;
-	parts->count[AFF_SEC_ITEM_FACTORS] = (uint64) m->n_items * o->factors;
-	parts->data[AFF_SEC_LOSS] = loss;
-	parts->count[AFF_SEC_LOSS] = o->iterations;
-	parts->data[AFF_SEC_SWEEP_SECONDS] = secs;
-	parts->count[AFF_SEC_SWEEP_SECONDS] = o->iterations;
 }
 
 /*
@@ -951,7 +863,6 @@ fit_model(FitState *st)
 	FitMeter	meter;
 	AffAllocator a = metered_allocator(&meter, st, work);
 	AffMatrix	m;
-	AffAls		als;
 	AffModelParts parts;
 	AffError	err;
 	instr_time	t0;
@@ -989,23 +900,7 @@ fit_model(FitState *st)
 	}
 	parts.data[AFF_SEC_POPULARITY] = item_popularity(&m);
 	parts.count[AFF_SEC_POPULARITY] = m.n_items;
-	switch (st->opts.method)
-	{
-		case AFF_METHOD_IMPLICIT_ALS:
-			run_als(st, &m, &parts, &a, &als);
-			break;
-		case AFF_METHOD_EASE:
-			parts.h.iterations = 0;
-			fit_ease(&m, &st->opts, &a, &parts);
-			break;
-		case AFF_METHOD_ITEM_KNN:
-			parts.h.iterations = 0;
-			fit_item_knn(&m, &st->opts, &a, &parts);
-			break;
-		default:
-			parts.h.iterations = 0;
-			break;
-	}
+	method_fit(&m, &st->opts, &a, &parts);
 
 	show_phase("affinity.fit writing the model");
 	parts.h.fit_seconds = seconds_since(t0);

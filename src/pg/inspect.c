@@ -100,37 +100,6 @@ append_doubles(StringInfo s, const char *key, const double *x, int64 n)
 	appendStringInfoString(s, "]");
 }
 
-/* The options that the model's method used. */
-static void
-append_options(StringInfo s, const AffModelHeader *h)
-{
-	appendStringInfo(s, ", \"options\": {\"min_user_interactions\": %d, "
-					 "\"min_item_interactions\": %d",
-					 h->min_user_interactions, h->min_item_interactions);
-	if (h->method == AFF_METHOD_IMPLICIT_ALS)
-		appendStringInfo(s, ", \"factors\": %d, \"iterations\": %d, "
-						 "\"regularization\": %s, \"alpha\": %s, \"confidence\": \"%s\", "
-						 "\"epsilon\": %s, \"solver\": \"%s\", \"cg_steps\": %d, "
-						 "\"seed\": " INT64_FORMAT ", \"threads\": %d",
-						 h->factors, h->iterations,
-						 float8out_internal(h->regularization),
-						 float8out_internal(h->alpha),
-						 h->confidence == AFF_CONFIDENCE_LINEAR ? "linear" : "log",
-						 float8out_internal(h->epsilon),
-						 h->solver == AFF_SOLVER_CG ? "cg" : "cholesky",
-						 h->cg_steps, h->seed, h->threads);
-	else if (h->method == AFF_METHOD_EASE)
-		appendStringInfo(s, ", \"regularization\": %s, \"max_items\": %d, \"threads\": %d",
-						 float8out_internal(h->regularization), h->max_items, h->threads);
-	else if (h->method == AFF_METHOD_ITEM_KNN)
-		appendStringInfo(s, ", \"neighbors\": %d, \"alpha\": %s, \"confidence\": \"%s\", "
-						 "\"epsilon\": %s, \"threads\": %d",
-						 h->neighbors, float8out_internal(h->alpha),
-						 h->confidence == AFF_CONFIDENCE_LINEAR ? "linear" : "log",
-						 float8out_internal(h->epsilon), h->threads);
-	appendStringInfoString(s, "}");
-}
-
 /*
  * Read n bytes at offset off of a stored value: a slice read for a TOAST
  * pointer, so describe() fetches only the chunks it needs.
@@ -238,7 +207,7 @@ describe(PG_FUNCTION_ARGS)
 					 h->version, aff_method_name(h->method),
 					 h->key_type == AFF_KEYS_TEXT ? "text" : "bigint",
 					 h->n_users, h->n_items, h->nnz);
-	append_options(&s, h);
+	describe_options(&s, h);
 	appendStringInfo(&s, ", \"rows_read\": " INT64_FORMAT ", \"rows_skipped_null\": " INT64_FORMAT
 					 ", \"rows_skipped_zero\": " INT64_FORMAT ", \"duplicates_summed\": " INT64_FORMAT
 					 ", \"dropped_users\": " INT64_FORMAT ", \"dropped_items\": " INT64_FORMAT

@@ -4,37 +4,29 @@
  *
  * Each option left out of the jsonb takes the GUC of the same name where
  * one exists, then the built-in default.  Unknown keys, wrong types and
- * out-of-range values are errors that name the option and the value.
+ * out-of-range values are errors that name the option and the value.  The
+ * options, their types and bounds are the engine's table (core/method.c).
  * Options that the chosen method does not use are accepted and ignored, so
  * one grid of options can drive several methods.
  */
 #include "affinity_pg.h"
 
+#include <errno.h>
 #include <limits.h>
 #include <math.h>
 
 #include "utils/builtins.h"
 #include "utils/numeric.h"
 
-#define OPTION_NAMES "method, factors, iterations, regularization, alpha, confidence, " \
-	"epsilon, solver, cg_steps, seed, threads, min_user_interactions, " \
-	"min_item_interactions, neighbors, max_items, verbose"
-
-/* Built-in L2 penalty of each method (documented in the README). */
-double
-method_default_regularization(int method)
-{
-	return method == AFF_METHOD_EASE ? 500.0 : 30.0;
-}
-
 static void
 defaults(FitOptions *o)
 {
+	memset(o, 0, sizeof(*o));	/* the state is copied as bytes: no stray padding */
 	o->method = AFF_METHOD_IMPLICIT_ALS;
 	o->factors = affinity_factors;
 	o->iterations = affinity_iterations;
 	o->solver = AFF_SOLVER_CG;
-	o->cg_steps = 3;
+	o->solver_steps = 3;
 	o->confidence = AFF_CONFIDENCE_LOG;
 	o->threads = affinity_threads;
 	o->min_user_interactions = 1;
@@ -49,13 +41,16 @@ defaults(FitOptions *o)
 }
 
 static void
-bad_value(const char *key, const char *shown, const char *want)
+bad_value(const AffOptionDef *d, const char *shown)
 {
+	char		want[160];
+
+	aff_option_describe_bounds(d, want, sizeof(want));
 	ereport(ERROR,
 			(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
-			 errmsg("invalid value for affinity.fit option \"%s\"", key),
+			 errmsg("invalid value for affinity.fit option \"%s\"", d->name),
 			 errdetail("The value given is %s.", shown),
-			 errhint("\"%s\" takes %s.", key, want)));
+			 errhint("\"%s\" takes %s.", d->name, want)));
 }
 
 static char *
@@ -70,112 +65,167 @@ show_value(JsonbValue *v)
 		case jbvString:
 			return psprintf("\"%.*s\"", v->val.string.len, v->val.string.val);
 		case jbvNumeric:
-			return DatumGetCString(DirectFunctionCall1(numeric_out,
-													   NumericGetDatum(v->val.numeric)));
+			{
+				char	   *text = DatumGetCString(DirectFunctionCall1(numeric_out,
+																	   NumericGetDatum(v->val.numeric)));
+
+				/* a number of hundreds of digits is shown in exponent form */
+				if (strlen(text) > 30)
+					return psprintf("%s", numeric_out_sci(v->val.numeric, 6));
+				return text;
+			}
 		default:
 			return "a nested array or object";
 	}
 }
 
-/* An integer option in [lo, hi]. */
+/* The full text of a jsonb number. */
+static char *
+numeric_text(JsonbValue *v)
+{
+	return DatumGetCString(DirectFunctionCall1(numeric_out,
+											   NumericGetDatum(v->val.numeric)));
+}
+
+/*
+ * An integer option of any int64 (the text of the number must be a whole
+ * number in range).
+ */
 static int64
-int_value(const char *key, JsonbValue *v, int64 lo, int64 hi)
+int64_value(const AffOptionDef *d, JsonbValue *v)
 {
 	char	   *text;
 	char	   *end;
 	long long	x;
 
 	if (v->type != jbvNumeric)
-		bad_value(key, show_value(v), psprintf("an integer from " INT64_FORMAT " to " INT64_FORMAT, lo, hi));
-	text = show_value(v);
+		bad_value(d, show_value(v));
+	text = numeric_text(v);
 	errno = 0;
 	x = strtoll(text, &end, 10);
-	if (errno != 0 || *end != '\0' || x < lo || x > hi)
-		bad_value(key, text, psprintf("an integer from " INT64_FORMAT " to " INT64_FORMAT, lo, hi));
+	if (errno != 0 || *end != '\0')
+		bad_value(d, show_value(v));
 	return (int64) x;
 }
 
-/* A real option, finite, >= lo (or > lo when open). */
+/*
+ * A number option: read from the number's text, so a value beyond double
+ * (1e400) is refused here, naming the option, rather than by the numeric
+ * cast; then the bounds of the table.
+ */
 static double
-real_value(const char *key, JsonbValue *v, double lo, bool open)
+number_value(const AffOptionDef *d, JsonbValue *v)
 {
+	char	   *text;
+	char	   *end;
 	double		x;
+	AffError	err;
 
 	if (v->type != jbvNumeric)
-		bad_value(key, show_value(v), "a number");
-	x = DatumGetFloat8(DirectFunctionCall1(numeric_float8,
-										   NumericGetDatum(v->val.numeric)));
-	if (!isfinite(x) || x < lo || (open && x == lo))
-		bad_value(key, show_value(v),
-				  psprintf("a finite number %s %g", open ? "above" : "of at least", lo));
+		bad_value(d, show_value(v));
+	text = numeric_text(v);
+	errno = 0;
+	x = strtod(text, &end);
+	if (errno != 0 || *end != '\0' || aff_option_check_number(d, x, &err) != AFF_OK)
+		bad_value(d, show_value(v));
 	return x;
 }
 
-/* A string option, matched against choices; returns the index. */
+/* A string option, matched against the choices; returns the code (index + 1). */
 static int
-choice_value(const char *key, JsonbValue *v, const char *const *choices, int n,
-			 const char *want)
+choice_value(const AffOptionDef *d, JsonbValue *v)
 {
 	int			i;
 
 	if (v->type == jbvString)
-		for (i = 0; i < n; i++)
-			if (strlen(choices[i]) == (size_t) v->val.string.len &&
-				strncmp(choices[i], v->val.string.val, v->val.string.len) == 0)
-				return i;
-	bad_value(key, show_value(v), want);
+		for (i = 0; i < d->n_choices; i++)
+			if (strlen(d->choices[i]) == (size_t) v->val.string.len &&
+				strncmp(d->choices[i], v->val.string.val, v->val.string.len) == 0)
+				return i + 1;
+	bad_value(d, show_value(v));
 	return -1;					/* not reached */
 }
 
+/* Apply one jsonb key and value through the option table. */
 static void
 set_option(FitOptions *o, const char *key, JsonbValue *v)
 {
-	static const char *const methods[] = {"implicit_als", "popularity", "ease", "item_knn"};
-	static const char *const solvers[] = {"cg", "cholesky"};
-	static const char *const confidences[] = {"linear", "log"};
+	bool		deprecated;
+	const AffOptionDef *d = aff_option_by_name(key, strlen(key), &deprecated);
+	char	   *field;
 
-	if (strcmp(key, "method") == 0)
-		o->method = choice_value(key, v, methods, 4,
-								 "one of \"implicit_als\", \"popularity\", \"ease\", \"item_knn\"") + 1;
-	else if (strcmp(key, "factors") == 0)
-		o->factors = (int) int_value(key, v, 1, AFF_MAX_FACTORS);
-	else if (strcmp(key, "iterations") == 0)
-		o->iterations = (int) int_value(key, v, 1, 10000);
-	else if (strcmp(key, "regularization") == 0)
-		o->regularization = real_value(key, v, 0.0, true);
-	else if (strcmp(key, "alpha") == 0)
-		o->alpha = real_value(key, v, 0.0, false);
-	else if (strcmp(key, "confidence") == 0)
-		o->confidence = choice_value(key, v, confidences, 2, "\"linear\" or \"log\"") + 1;
-	else if (strcmp(key, "epsilon") == 0)
-		o->epsilon = real_value(key, v, 0.0, true);
-	else if (strcmp(key, "solver") == 0)
-		o->solver = choice_value(key, v, solvers, 2, "\"cg\" or \"cholesky\"") + 1;
-	else if (strcmp(key, "cg_steps") == 0)
-		o->cg_steps = (int) int_value(key, v, 1, 1000);
-	else if (strcmp(key, "seed") == 0)
-		o->seed = int_value(key, v, PG_INT64_MIN, PG_INT64_MAX);
-	else if (strcmp(key, "threads") == 0)
-		o->threads = (int) int_value(key, v, 0, 1024);
-	else if (strcmp(key, "min_user_interactions") == 0)
-		o->min_user_interactions = (int) int_value(key, v, 1, INT_MAX);
-	else if (strcmp(key, "min_item_interactions") == 0)
-		o->min_item_interactions = (int) int_value(key, v, 1, INT_MAX);
-	else if (strcmp(key, "neighbors") == 0)
-		o->neighbors = (int) int_value(key, v, 1, INT_MAX);
-	else if (strcmp(key, "max_items") == 0)
-		o->max_items = (int) int_value(key, v, 1, INT_MAX);
-	else if (strcmp(key, "verbose") == 0)
+	if (d == NULL)
 	{
-		if (v->type != jbvBool)
-			bad_value(key, show_value(v), "true or false");
-		o->verbose = v->val.boolean;
-	}
-	else
+		char		names[512];
+
+		aff_option_list(names, sizeof(names));
 		ereport(ERROR,
 				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
 				 errmsg("unknown affinity.fit option \"%s\"", key),
-				 errhint("Valid options are: %s.", OPTION_NAMES)));
+				 errhint("Valid options are: %s.", names)));
+	}
+	if (deprecated)
+		ereport(NOTICE,
+				(errmsg("affinity.fit option \"%s\" is deprecated", key),
+				 errhint("Write \"%s\" instead; it means the same.", d->name)));
+	field = (char *) o + d->field;
+	switch (d->type)
+	{
+		case AFF_OPTTYPE_INT:
+			{
+				int64		x = int64_value(d, v);
+				AffError	err;
+
+				if (aff_option_check_number(d, (double) x, &err) != AFF_OK)
+					bad_value(d, show_value(v));
+				*(int *) field = (int) x;
+			}
+			break;
+		case AFF_OPTTYPE_INT64:
+			*(int64 *) field = int64_value(d, v);
+			break;
+		case AFF_OPTTYPE_REAL:
+			*(double *) field = number_value(d, v);
+			break;
+		case AFF_OPTTYPE_CHOICE:
+			*(int *) field = choice_value(d, v);
+			break;
+		case AFF_OPTTYPE_BOOL:
+			if (v->type != jbvBool)
+				bad_value(d, show_value(v));
+			*(bool *) field = v->val.boolean;
+			break;
+	}
+}
+
+/*
+ * The values merged from the GUCs (whose own ranges are wider) must keep
+ * the bounds of the option table too.
+ */
+static void
+check_merged(const FitOptions *o)
+{
+	int			i;
+
+	for (i = 0; i < AFF_OPT_COUNT; i++)
+	{
+		const AffOptionDef *d = &aff_option_defs[i];
+		const char *field = (const char *) o + d->field;
+		AffError	err;
+		double		x;
+
+		if (d->type == AFF_OPTTYPE_REAL)
+			x = *(const double *) field;
+		else if (d->type == AFF_OPTTYPE_INT)
+			x = *(const int *) field;
+		else
+			continue;
+		/* zero regularization is refused by the method that needs more */
+		if (d->id == AFF_OPT_REGULARIZATION && x == 0)
+			continue;
+		if (aff_option_check_number(d, x, &err) != AFF_OK)
+			bad_value(d, psprintf("%g (from the setting affinity.%s)", x, d->name));
+	}
 }
 
 /*
@@ -209,12 +259,13 @@ fit_options_parse(Jsonb *options, FitOptions *o)
 	}
 	if (o->regularization < 0)
 		o->regularization = affinity_regularization >= 0 ?
-			affinity_regularization : method_default_regularization(o->method);
+			affinity_regularization : aff_default_regularization(o->method);
 	if (o->regularization <= 0 && o->method == AFF_METHOD_IMPLICIT_ALS)
 		ereport(ERROR,
 				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
 				 errmsg("implicit_als needs a positive regularization"),
 				 errdetail("affinity.regularization is %g.", o->regularization),
 				 errhint("Set the option \"regularization\" to a positive number such as 0.1.")));
+	check_merged(o);
 	o->threads = resolve_threads(o->threads);
 }

@@ -222,18 +222,6 @@ emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const AffModelView *v, bool users
 	}
 }
 
-float
-dot_f(const float *a, const float *b, int f)
-{
-	float		s = 0;
-	int			k;
-
-	for (k = 0; k < f; k++)
-		s += a[k] * b[k];
-	return s;
-}
-
-
 ArrayType *
 vector_array(const float *x, int f)
 {

@@ -25,7 +25,6 @@ extern int64 key_arg_index(FunctionCallInfo fcinfo, int argno, const AffModelVie
 						   bool users);
 extern Datum key_datum(const AffModelView *v, bool users, int64 i);
 extern void check_output_keys(FunctionCallInfo fcinfo, const AffModelView *v, int attno);
-extern float dot_f(const float *a, const float *b, int f);
 extern ArrayType *vector_array(const float *x, int f);
 extern void user_scores(const AffModelView *v, int64 u, float *scores);
 

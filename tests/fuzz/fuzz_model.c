@@ -23,8 +23,8 @@
  * or a NULL dereference here, before it can show up in a backend.
  *
  * Build (tests/check_fuzz.sh does this):
- *	clang -g -O1 -fsanitize=fuzzer,address,undefined -fno-sanitize-recover=undefined \
- *		-Isrc/core tests/fuzz/fuzz_model.c src/core/model_format.c src/core/text_key.c src/core/util.c -lm
+ *	clang -g -O1 -fsanitize=fuzzer,address,undefined -fno-sanitize-recover=undefined -DAFF_ASSERTS \
+ *		-Isrc/core tests/fuzz/fuzz_model.c src/core/*.c -lopenblas -lm
  */
 #include <stdint.h>
 #include <stdio.h>

@@ -39,7 +39,7 @@ HEADER_FIELDS = [
     ("varlena_word", "I"), ("magic", "4s"), ("version", "H"), ("method", "H"),
     ("key_type", "H"), ("n_sections", "H"), ("total_size", "Q"), ("checksum", "Q"),
     ("fingerprint", "Q"), ("n_users", "q"), ("n_items", "q"), ("nnz", "q"),
-    ("factors", "i"), ("iterations", "i"), ("solver", "i"), ("cg_steps", "i"),
+    ("factors", "i"), ("iterations", "i"), ("solver", "i"), ("solver_steps", "i"),
     ("confidence", "i"), ("threads", "i"), ("min_user_interactions", "i"),
     ("min_item_interactions", "i"), ("neighbors", "i"), ("max_items", "i"),
     ("regularization", "d"), ("alpha", "d"), ("epsilon", "d"), ("seed", "q"),
@@ -262,8 +262,9 @@ def synth(method, n_users, n_items, factors=3, neighbors=2, seed=7, text=False):
         pop[i] += 1.0
     h = {n: 0 for n, _ in HEADER_FIELDS}
     h.update(magic=b"AFMD", version=1, method=METHOD[method], key_type=1, reserved=b"\0" * 48,
-             n_users=n_users, n_items=n_items, nnz=len(idx), factors=factors, iterations=2,
-             solver=1, cg_steps=3, confidence=2, threads=1, min_user_interactions=1,
+             n_users=n_users, n_items=n_items, nnz=len(idx),
+             factors=factors if method == "implicit_als" else 0, iterations=2,
+             solver=1, solver_steps=3, confidence=2, threads=1, min_user_interactions=1,
              min_item_interactions=1, neighbors=neighbors, max_items=20000,
              regularization=0.1, alpha=10.0, epsilon=1.0, seed=42, rows_read=len(idx),
              fit_seconds=0.001)
@@ -466,6 +467,13 @@ BAD = {
 }
 
 
+def _set_fixed(buf, field, value):
+    """buf with one header field changed and the checksum made right again."""
+    b = bytearray(buf)
+    set_header(b, field, value)
+    return fix_checksum(b)
+
+
 def _stray_factors(method):
     """A model of a method without factors that still carries a factor
     section: serving code tests for the section, not the method."""
@@ -565,6 +573,7 @@ BAD_OTHER = {
     "ease_weight_nan": _ease_edit(lambda b: put_elem(b, KIND["item_weights"], 3, float("nan"))),
     "ease_weights_short": _ease_edit(lambda b: set_entry(b, KIND["item_weights"], count=24)),
     "popularity_with_factors": lambda _: _stray_factors("popularity")(synth("popularity", 3, 4)),
+    "popularity_factors_huge": lambda _: _set_fixed(synth("popularity", 3, 4), "factors", 0x7FFFFFFF),
 }
 
 # The cases of sql/corrupt.sql, in its order: (case name, what it shows).
@@ -592,6 +601,7 @@ SQL_CASES = [
     ("method_9", "an unknown method code"),
     ("key_type_9", "an unknown key type"),
     ("popularity_with_factors", "a popularity model carrying a factor section"),
+    ("popularity_factors_huge", "a popularity model whose header claims 2^31-1 factors"),
     ("text_hash_mismatch", "a text key whose bytes do not match its stored hash"),
 ]
 

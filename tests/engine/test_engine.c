@@ -1,0 +1,530 @@
+/*
+ * test_engine.c
+ *		The engine outside the server: each method's real fit and serving
+ *		kernels on small inputs, checked against values computed another
+ *		way (dense naive sums, an exact normal-equation solve, brute-force
+ *		top-k and cosine), at sizes that cross several blocks and threads.
+ *
+ * Built with -DAFF_ASSERTS and AddressSanitizer/UBSan by
+ * tests/check_engine.sh.  Prints one line per check; exits 1 on a failure.
+ */
+#include <math.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include "aff_core.h"
+#include "interactions.h"
+#include "method.h"
+#include "model_format.h"
+#include "serve.h"
+#include "als.h"
+
+static int	failures = 0;
+
+static void
+check(int ok, const char *what, double got, double want)
+{
+	printf("%-4s %s (got %.6g, want %.6g)\n", ok ? "ok" : "FAIL", what, got, want);
+	if (!ok)
+		failures++;
+}
+
+/* An allocator that keeps every block and frees them all at the end. */
+typedef struct Arena
+{
+	void	  **blocks;
+	size_t		n;
+	size_t		cap;
+} Arena;
+
+static void *
+arena_alloc(void *ctx, size_t size)
+{
+	Arena	   *a = ctx;
+	void	   *p = malloc(size);
+
+	if (p == NULL)
+		return NULL;
+	if (a->n == a->cap)
+	{
+		a->cap = a->cap ? a->cap * 2 : 64;
+		a->blocks = realloc(a->blocks, a->cap * sizeof(void *));
+	}
+	a->blocks[a->n++] = p;
+	return p;
+}
+
+static void
+arena_release(void *ctx, void *ptr)
+{
+	Arena	   *a = ctx;
+	size_t		i;
+
+	for (i = 0; i < a->n; i++)
+		if (a->blocks[i] == ptr)
+		{
+			free(ptr);
+			a->blocks[i] = a->blocks[--a->n];
+			return;
+		}
+}
+
+static void
+arena_free(Arena *a)
+{
+	size_t		i;
+
+	for (i = 0; i < a->n; i++)
+		free(a->blocks[i]);
+	free(a->blocks);
+	memset(a, 0, sizeof(*a));
+}
+
+static int
+no_poll(void *arg)
+{
+	(void) arg;
+	return 0;
+}
+
+/* Deterministic pseudo-random numbers (splitmix64). */
+static uint64_t rng = 12345;
+
+static uint64_t
+next_u64(void)
+{
+	uint64_t	z = (rng += 0x9e3779b97f4a7c15ULL);
+
+	z = (z ^ (z >> 30)) * 0xbf58476d1ce4e5b9ULL;
+	z = (z ^ (z >> 27)) * 0x94d049bb133111ebULL;
+	return z ^ (z >> 31);
+}
+
+/* A model fitted by method `method` on users x items random rows, as bytes. */
+static uint8_t *
+fit_model(Arena *ar, const AffAllocator *a, int method, int64_t users, int64_t items,
+		  int threads, AffModelView *v)
+{
+	int64_t		n = users * 8;
+	AffTriple  *rows = malloc(sizeof(AffTriple) * n);
+	AffMatrix	m;
+	AffOptions	o;
+	AffModelParts parts;
+	AffFitContext cx;
+	AffError	err;
+	uint64_t	size;
+	uint8_t    *buf;
+	float	   *pop;
+	int64_t		i;
+
+	(void) ar;
+	for (i = 0; i < n; i++)
+	{
+		rows[i].user = (int64_t) (i / 8) * 3 + 1;
+		rows[i].item = (int64_t) (next_u64() % (uint64_t) items) * 7 + 2;
+		rows[i].weight = (float) (1 + next_u64() % 4);
+		rows[i].pad = 0;
+	}
+	if (aff_matrix_build(rows, n, 1, 1, a, &m, &err) != AFF_OK)
+	{
+		printf("FAIL matrix build: %s\n", err.msg);
+		exit(1);
+	}
+	free(rows);
+	memset(&o, 0, sizeof(o));
+	o.method = method;
+	o.factors = 12;
+	o.iterations = 3;
+	o.solver = AFF_SOLVER_CG;
+	o.solver_steps = 3;
+	o.confidence = AFF_CONFIDENCE_LOG;
+	o.threads = threads;
+	o.min_user_interactions = o.min_item_interactions = 1;
+	o.neighbors = 15;
+	o.max_items = 20000;
+	o.regularization = method == AFF_METHOD_EASE ? 50 : 0.5;
+	o.alpha = 5;
+	o.epsilon = 1;
+	o.seed = 7;
+	aff_fit_header(&parts, &o, &m, AFF_KEYS_BIGINT);
+	pop = aff_alloc_array(a, (size_t) m.n_items, sizeof(float));
+	for (i = 0; i < m.n_items; i++)
+		pop[i] = (float) (m.col_ptr[i + 1] - m.col_ptr[i]);
+	parts.data[AFF_SEC_POPULARITY] = pop;
+	parts.count[AFF_SEC_POPULARITY] = (uint64_t) m.n_items;
+	memset(&cx, 0, sizeof(cx));
+	cx.alloc = a;
+	cx.poll = no_poll;
+	cx.max_model_bytes = (uint64_t) 1 << 30;
+	if (aff_fit_run(&m, &o, &cx, &parts, &err) != AFF_OK ||
+		aff_model_size(&parts, &size, &err) != AFF_OK)
+	{
+		printf("FAIL fit of method %d: %s %s\n", method, err.msg, err.detail);
+		exit(1);
+	}
+	buf = aff_alloc(a, size);
+	aff_model_write(&parts, buf, size);
+	if (aff_model_validate(buf, size, v, &err) != AFF_OK)
+	{
+		printf("FAIL fitted model does not validate: %s %s\n", err.msg, err.detail);
+		exit(1);
+	}
+	return buf;
+}
+
+/* Naive score of (u, i): dot product or sum of pair weights, in double. */
+static double
+naive_pair(const AffModelView *v, int64_t u, int64_t i)
+{
+	double		s = 0;
+	int64_t		j;
+	int64_t		k;
+	int			f;
+
+	if (v->h->method == AFF_METHOD_IMPLICIT_ALS)
+	{
+		for (f = 0; f < v->h->factors; f++)
+			s += (double) v->user_factors[u * v->h->factors + f] *
+				v->item_factors[i * v->h->factors + f];
+		return s;
+	}
+	if (v->h->method == AFF_METHOD_POPULARITY)
+		return v->popularity[i];
+	for (j = v->seen_ptr[u]; j < v->seen_ptr[u + 1]; j++)
+	{
+		int32_t		t = v->seen_items[j];
+
+		if (v->h->method == AFF_METHOD_EASE)
+			s += v->item_weights[(size_t) t * v->h->n_items + i];
+		else
+			for (k = v->neighbor_ptr[t]; k < v->neighbor_ptr[t + 1]; k++)
+				if (v->neighbor_idx[k] == i)
+					s += v->neighbor_sim[k];
+	}
+	return s;
+}
+
+/* Brute force: is (idx, score) list the k best unseen by full sort order? */
+static double topk_tol = 0;
+
+static int
+is_topk(const float *scores, int64_t n, const uint8_t *excluded, const AffScored *got,
+		int64_t kept, int64_t k)
+{
+	int64_t		r;
+	int64_t		j;
+	int64_t		avail = 0;
+
+	for (j = 0; j < n; j++)
+		avail += !excluded[j];
+	if (kept != (avail < k ? avail : k))
+		return 0;
+	for (r = 0; r < kept; r++)
+	{
+		int64_t		better = 0;
+		int64_t		not_worse = 0;
+		double		tol = topk_tol * (1 + fabs(got[r].score));
+
+		if (excluded[got[r].index] || fabs(got[r].score - scores[got[r].index]) > tol)
+			return 0;
+		for (j = 0; j < n; j++)
+		{
+			if (excluded[j])
+				continue;
+			if (scores[j] > got[r].score + tol ||
+				(tol == 0 && scores[j] == got[r].score && j < got[r].index))
+				better++;
+			if (scores[j] >= got[r].score - tol)
+				not_worse++;
+		}
+		if (better > r || not_worse <= r)
+			return 0;
+	}
+	return 1;
+}
+
+/* Every method: scores, pairs, baskets, item rows, contributions, batch. */
+static void
+test_method(int method, int64_t users, int64_t items)
+{
+	Arena		ar = {0};
+	AffAllocator a = {arena_alloc, arena_release, &ar};
+	AffModelView v;
+	const AffMethod *meth = aff_method_by_code(method);
+	AffServe	s;
+	AffBatch	b;
+	AffError	err;
+	int64_t		n_items;
+	float	   *scores;
+	float	   *scores1;
+	uint8_t    *excl;
+	double		maxerr = 0;
+	double		scale = 0;
+	int64_t		u;
+	int64_t		i;
+	int32_t    *all_users;
+	char		what[160];
+	int			ok = 1;
+
+	fit_model(&ar, &a, method, users, items, 1, &v);
+	n_items = v.h->n_items;
+	memset(&s, 0, sizeof(s));
+	s.v = &v;
+	s.alloc = &a;
+	if (meth->needs_gram)
+	{
+		double	   *g = aff_alloc_array(&a, (size_t) v.h->factors * v.h->factors, sizeof(double));
+		float	   *gf = aff_alloc_array(&a, (size_t) v.h->factors * v.h->factors, sizeof(float));
+		int			p;
+		int			q;
+
+		/* Y^T Y by a plain triple loop, not BLAS */
+		for (p = 0; p < v.h->factors; p++)
+			for (q = 0; q < v.h->factors; q++)
+			{
+				double		t = 0;
+
+				for (i = 0; i < n_items; i++)
+					t += (double) v.item_factors[i * v.h->factors + p] *
+						v.item_factors[i * v.h->factors + q];
+				g[p * v.h->factors + q] = t;
+			}
+		(void) gf;
+		s.gram = g;
+	}
+	if (meth->has_factors)
+	{
+		float	   *nrm = aff_alloc_array(&a, (size_t) n_items, sizeof(float));
+
+		for (i = 0; i < n_items; i++)
+			nrm[i] = sqrtf((float) naive_pair(&(AffModelView)
+											  {.h = v.h, .user_factors = v.item_factors,
+											   .item_factors = v.item_factors}, i, i));
+		s.item_norms = nrm;
+	}
+
+	/* user scores and pair scores against the naive sum */
+	scores = aff_alloc_array(&a, (size_t) n_items, sizeof(float));
+	scores1 = aff_alloc_array(&a, (size_t) n_items, sizeof(float));
+	for (u = 0; u < v.h->n_users; u += 7)
+	{
+		meth->user_scores(&s, u, scores);
+		for (i = 0; i < n_items; i++)
+		{
+			double		want = naive_pair(&v, u, i);
+
+			maxerr = fmax(maxerr, fabs(scores[i] - want));
+			maxerr = fmax(maxerr, fabs(meth->pair_score(&s, u, i) - want));
+			scale = fmax(scale, fabs(want));
+		}
+	}
+	snprintf(what, sizeof(what), "%s: user and pair scores = naive sums (max error / scale)", meth->name);
+	check(maxerr <= 1e-5 * fmax(scale, 1), what, maxerr / fmax(scale, 1), 1e-5);
+
+	/* basket of user 3's items = that user's scores (weights and ALS: exact solve) */
+	{
+		int64_t		lo = v.seen_ptr[3];
+		int64_t		n = v.seen_ptr[4] - lo;
+
+		if (meth->basket_scores(&s, v.seen_items + lo, v.seen_weights + lo, n, scores1, &err) != AFF_OK)
+			check(0, "basket scores ran", 0, 0);
+		if (method != AFF_METHOD_IMPLICIT_ALS)
+		{
+			meth->user_scores(&s, 3, scores);
+			maxerr = 0;
+			scale = 1;
+			for (i = 0; i < n_items; i++)
+				maxerr = fmax(maxerr, fabs(scores1[i] - scores[i]));
+		}
+		snprintf(what, sizeof(what), "%s: basket scores = the user's own scores", meth->name);
+		if (method != AFF_METHOD_IMPLICIT_ALS)
+			check(maxerr <= 1e-4 * fmax(scale, 1), what, maxerr, 1e-4 * fmax(scale, 1));
+	}
+
+	/* contributions add up to the fold-in score (ALS) or the pair score */
+	if (meth->contributions)
+	{
+		int64_t		n = v.seen_ptr[6] - v.seen_ptr[5];
+		float	   *c = aff_alloc_array(&a, (size_t) n + 1, sizeof(float));
+		double		sum = 0;
+		double		want;
+		int64_t		j;
+
+		if (meth->contributions(&s, 5, 11, c, &err) != AFF_OK)
+			check(0, "contributions ran", 0, 0);
+		for (j = 0; j < n; j++)
+			sum += c[j];
+		if (method == AFF_METHOD_IMPLICIT_ALS)
+		{
+			meth->basket_scores(&s, v.seen_items + v.seen_ptr[5], v.seen_weights + v.seen_ptr[5],
+								n, scores1, &err);
+			want = scores1[11];
+		}
+		else
+			want = naive_pair(&v, 5, 11);
+		snprintf(what, sizeof(what), "%s: contributions add up to the score", meth->name);
+		check(fabs(sum - want) <= 1e-4 * fmax(fabs(want), 1), what, sum, want);
+	}
+
+	/* item rows: cosine by brute force for factors, the weights otherwise */
+	if (meth->item_row)
+	{
+		excl = aff_alloc(&a, (size_t) n_items);
+		meth->item_row(&s, 4, scores, excl);
+		maxerr = 0;
+		for (i = 0; i < n_items; i++)
+		{
+			double		want;
+
+			if (method == AFF_METHOD_IMPLICIT_ALS)
+			{
+				AffModelView iv = {.h = v.h, .user_factors = v.item_factors,
+				.item_factors = v.item_factors};
+
+				want = naive_pair(&iv, 4, i) / sqrt(naive_pair(&iv, 4, 4) * naive_pair(&iv, i, i));
+			}
+			else if (method == AFF_METHOD_EASE)
+				want = v.item_weights[4 * n_items + i];
+			else
+			{
+				int64_t		k;
+
+				want = 0;
+				for (k = v.neighbor_ptr[4]; k < v.neighbor_ptr[5]; k++)
+					if (v.neighbor_idx[k] == i)
+						want = v.neighbor_sim[k];
+			}
+			if (!excl[i])
+				maxerr = fmax(maxerr, fabs(scores[i] - want));
+		}
+		snprintf(what, sizeof(what), "%s: item row = brute-force %s", meth->name,
+				 method == AFF_METHOD_IMPLICIT_ALS ? "cosine" : "weights");
+		check(maxerr <= 1e-5 && excl[4], what, maxerr, 1e-5);
+	}
+
+	/* batch on 3 threads (several blocks) = per-user brute-force top-k */
+	all_users = aff_alloc_array(&a, (size_t) v.h->n_users, sizeof(int32_t));
+	for (u = 0; u < v.h->n_users; u++)
+		all_users[u] = (int32_t) u;
+	excl = aff_alloc(&a, (size_t) n_items);
+	if (aff_batch_init(&b, &s, 10, true, 3, v.h->n_users, &a, &err) != AFF_OK ||
+		aff_batch_run(&b, all_users, v.h->n_users, no_poll, NULL, &err) != AFF_OK)
+		check(0, "batch ran", 0, 0);
+	/* sgemm and sgemv sum in different orders: scores agree to rounding */
+	topk_tol = method == AFF_METHOD_IMPLICIT_ALS ? 1e-5 : 0;
+	for (u = 0; u < v.h->n_users && ok; u++)
+	{
+		int64_t		j;
+
+		meth->user_scores(&s, u, scores);
+		memset(excl, 0, (size_t) n_items);
+		for (j = v.seen_ptr[u]; j < v.seen_ptr[u + 1]; j++)
+			excl[v.seen_items[j]] = 1;
+		ok = is_topk(scores, n_items, excl, b.out + u * 10, b.kept[u], 10);
+	}
+	snprintf(what, sizeof(what), "%s: batch of %lld users in blocks of %d on 3 threads = brute-force top-k",
+			 meth->name, (long long) v.h->n_users, b.block);
+	check(ok && v.h->n_users > 3 * b.block, what, (double) ok, 1);
+
+	/* the one top-k loop with a mask and a candidate list */
+	{
+		int32_t		cand[40];
+		int64_t		nc = 0;
+		AffItemFilter flt = {excl, v.seen_items + v.seen_ptr[2], v.seen_ptr[3] - v.seen_ptr[2],
+		cand, 0};
+		AffScored	heap[8];
+		AffTopK		t;
+		uint8_t    *bad = aff_alloc(&a, (size_t) n_items);
+
+		for (i = 0; i < n_items && nc < 40; i += 3)
+			cand[nc++] = (int32_t) i;
+		flt.n_cand = nc;
+		meth->user_scores(&s, 2, scores);
+		memset(excl, 0, (size_t) n_items);
+		excl[0] = excl[9] = 1;
+		aff_topk_init(&t, heap, 8);
+		aff_topk_scores(scores, n_items, &flt, &t);
+		aff_topk_finish(&t);
+		for (i = 0; i < n_items; i++)
+			bad[i] = excl[i] || i % 3 != 0 || i / 3 >= 40;
+		for (i = v.seen_ptr[2]; i < v.seen_ptr[3]; i++)
+			bad[v.seen_items[i]] = 1;
+		snprintf(what, sizeof(what), "%s: top-k with mask, seen list and candidates = brute force", meth->name);
+		check(is_topk(scores, n_items, bad, heap, t.n, 8), what, 1, 1);
+	}
+	arena_free(&ar);
+}
+
+/* The ALS fit: the same factors on 1 and 4 threads, and divergence refused. */
+static void
+test_als_fit(void)
+{
+	Arena		ar = {0};
+	AffAllocator a = {arena_alloc, arena_release, &ar};
+	AffModelView v1;
+	AffModelView v4;
+	uint64_t	save = rng;
+
+	fit_model(&ar, &a, AFF_METHOD_IMPLICIT_ALS, 700, 90, 1, &v1);
+	rng = save;
+	fit_model(&ar, &a, AFF_METHOD_IMPLICIT_ALS, 700, 90, 4, &v4);
+	check(memcmp(v1.user_factors, v4.user_factors,
+				 sizeof(float) * v1.h->n_users * v1.h->factors) == 0 &&
+		  memcmp(v1.item_factors, v4.item_factors,
+				 sizeof(float) * v1.h->n_items * v1.h->factors) == 0,
+		  "implicit_als: 700 users (11 blocks of 64) give equal factors on 1 and 4 threads", 1, 1);
+	arena_free(&ar);
+
+	/* a NaN regularization makes the loss NaN: the fit must say it diverged */
+	{
+		AffTriple	rows[3] = {{1, 1, 1, 0}, {2, 1, 2, 0}, {2, 2, 1, 0}};
+		AffMatrix	m;
+		AffOptions	o = {0};
+		AffModelParts parts;
+		AffFitContext cx = {0};
+		AffError	err;
+		AffStatus	st;
+		Arena		ar2 = {0};
+		AffAllocator a2 = {arena_alloc, arena_release, &ar2};
+
+		aff_matrix_build(rows, 3, 1, 1, &a2, &m, &err);
+		o.method = AFF_METHOD_IMPLICIT_ALS;
+		o.factors = 2;
+		o.iterations = 2;
+		o.solver = AFF_SOLVER_CHOLESKY;
+		o.solver_steps = 3;
+		o.confidence = AFF_CONFIDENCE_LOG;
+		o.threads = 1;
+		o.regularization = NAN;
+		o.alpha = 1;
+		o.epsilon = 1;
+		cx.alloc = &a2;
+		cx.poll = no_poll;
+		aff_fit_header(&parts, &o, &m, AFF_KEYS_BIGINT);
+		st = aff_fit_run(&m, &o, &cx, &parts, &err);
+		printf("     (%s / %s)\n", err.msg, err.detail);
+		check(st == AFF_ERR_NUMERIC && strstr(err.msg, "diverged") != NULL,
+			  "implicit_als: a non-finite loss is refused as divergence", st, AFF_ERR_NUMERIC);
+		o.confidence = AFF_CONFIDENCE_LINEAR;
+		o.regularization = 1;
+		o.alpha = 6e11;			/* weight 1: 6e11 + 1; weight 2: 1.2e12, over */
+		st = aff_fit_run(&m, &o, &cx, &parts, &err);
+		check(st == AFF_ERR_NUMERIC && strstr(err.detail, "User 2, item 1") != NULL,
+			  "implicit_als: a confidence over 1e12 is refused naming the interaction", st,
+			  AFF_ERR_NUMERIC);
+		arena_free(&ar2);
+	}
+}
+
+int
+main(void)
+{
+	test_method(AFF_METHOD_IMPLICIT_ALS, 400, 120);
+	test_method(AFF_METHOD_POPULARITY, 300, 80);
+	test_method(AFF_METHOD_EASE, 300, 80);
+	test_method(AFF_METHOD_ITEM_KNN, 300, 80);
+	test_als_fit();
+	printf("%s: %d failure(s)\n", failures ? "FAILED" : "passed", failures);
+	return failures ? 1 : 0;
+}
