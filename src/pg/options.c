@@ -13,6 +13,7 @@
 
 #include <errno.h>
 #include <limits.h>
+#include <float.h>
 #include <math.h>
 
 #include "utils/builtins.h"
@@ -126,6 +127,9 @@ number_value(const AffOptionDef *d, JsonbValue *v)
 	text = numeric_text(v);
 	errno = 0;
 	x = strtod(text, &end);
+	/* ERANGE with a tiny result is underflow: the bounds decide about it */
+	if (errno == ERANGE && fabs(x) <= DBL_MIN)
+		errno = 0;
 	if (errno != 0 || *end != '\0' || aff_option_check_number(d, x, &err) != AFF_OK)
 		bad_value(d, show_value(v));
 	return x;

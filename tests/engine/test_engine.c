@@ -101,6 +101,21 @@ next_u64(void)
 	return z ^ (z >> 31);
 }
 
+
+/* Build the matrix of rows with the defaults of a fit (no minimums, a fixed index key). */
+static AffStatus
+build(AffTriple *rows, int64_t n, const AffAllocator *a, AffMatrix *m, AffError *err)
+{
+	AffBuildParams bp;
+
+	memset(&bp, 0, sizeof(bp));
+	bp.min_user = 1;
+	bp.min_item = 1;
+	bp.index_key[0] = 0x0123456789abcdefULL;
+	bp.index_key[1] = 0xfedcba9876543210ULL;
+	return aff_matrix_build(rows, n, &bp, a, m, err);
+}
+
 /* A model fitted by method `method` on users x items random rows, as bytes. */
 static uint8_t *
 fit_model(Arena *ar, const AffAllocator *a, int method, int64_t users, int64_t items,
@@ -126,7 +141,7 @@ fit_model(Arena *ar, const AffAllocator *a, int method, int64_t users, int64_t i
 		rows[i].weight = (float) (1 + next_u64() % 4);
 		rows[i].pad = 0;
 	}
-	if (aff_matrix_build(rows, n, 1, 1, a, &m, &err) != AFF_OK)
+	if (build(rows, n, a, &m, &err) != AFF_OK)
 	{
 		printf("FAIL matrix build: %s\n", err.msg);
 		exit(1);
@@ -488,7 +503,7 @@ test_als_fit(void)
 		Arena		ar2 = {0};
 		AffAllocator a2 = {arena_alloc, arena_release, &ar2};
 
-		aff_matrix_build(rows, 3, 1, 1, &a2, &m, &err);
+		build(rows, 3, &a2, &m, &err);
 		o.method = AFF_METHOD_IMPLICIT_ALS;
 		o.factors = 2;
 		o.iterations = 2;
