@@ -50,8 +50,8 @@
 
 /*
  * A held-out pair: each side a bigint key or the arena offset of a text key
- * as collected; in the copy resolve_pairs() makes, the model's index of each key, or a
- * negative number for a key the model does not know.
+ * as collected; in the copy resolve_pairs() makes, the model's index of each
+ * key, or a negative number for a key the model does not know.
  */
 typedef struct HeldOut
 {
