@@ -539,16 +539,17 @@ END
 $$;
 COMMENT ON FUNCTION affinity.registry_query_types(text, text) IS 'the types of a source query''s user_id and item_id columns, without reading a row';
 
--- The registry's key type of one column type: smallint, integer and bigint
--- are bigint keys, text and varchar text keys (domains by their base type);
--- any other type is refused with the cast to write in the query.
-CREATE FUNCTION affinity.registry_key_type(model_name text, column_name text, column_type regtype)
+-- The registry's key type of one column type (a type name, as regtype
+-- prints it here): smallint, integer and bigint are bigint keys, text and
+-- varchar text keys (domains by their base type); any other type is refused
+-- with the cast to write in the query.
+CREATE FUNCTION affinity.registry_key_type(model_name text, column_name text, column_type text)
 	RETURNS text
 	LANGUAGE plpgsql STABLE
 	SET search_path = pg_catalog, pg_temp
 AS $$
 DECLARE
-	t oid := column_type::oid;
+	t oid := pg_catalog.to_regtype(column_type)::oid;
 	base oid;
 BEGIN
 	LOOP
@@ -578,10 +579,10 @@ BEGIN
 	END IF;
 END
 $$;
-COMMENT ON FUNCTION affinity.registry_key_type(text, text, regtype) IS 'bigint or text: the key type of a source query''s column type, or an error naming the cast';
+COMMENT ON FUNCTION affinity.registry_key_type(text, text, text) IS 'bigint or text: the key type of a source query''s column type, or an error naming the cast';
 
 -- The key types of a query's columns as a pair a fit takes, or an error.
-CREATE FUNCTION affinity.registry_key_types(model_name text, user_type regtype, item_type regtype)
+CREATE FUNCTION affinity.registry_key_types(model_name text, user_type text, item_type text)
 	RETURNS text
 	LANGUAGE plpgsql STABLE
 	SET search_path = pg_catalog, pg_temp
@@ -602,7 +603,7 @@ BEGIN
 	RETURN u || ',' || i;
 END
 $$;
-COMMENT ON FUNCTION affinity.registry_key_types(text, regtype, regtype) IS 'the ''user type,item type'' pair of a source query''s key columns, or an error naming the casts';
+COMMENT ON FUNCTION affinity.registry_key_types(text, text, text) IS 'the ''user type,item type'' pair of a source query''s key columns, or an error naming the casts';
 
 -- 1.1 rows keep the key types of their current model; 1.1 refreshes built
 -- bigint keys, so a model never fitted gets bigint keys.  A stored value
@@ -682,7 +683,7 @@ BEGIN
 				  DETAIL = SQLERRM,
 				  HINT = 'The query must yield columns user_id and item_id (bigint or text) and weight (castable to real).';
 	END;
-	kt := affinity.registry_key_types(name, t.user_type, t.item_type);
+	kt := affinity.registry_key_types(name, t.user_type::text, t.item_type::text);
 	IF r.model IS NOT NULL AND r.key_types IS DISTINCT FROM kt THEN
 		RAISE NOTICE 'model "%" takes % keys from its next refresh; its current model has % keys',
 			name, kt, coalesce(r.key_types, affinity.model_key_types(r.model))
@@ -753,7 +754,7 @@ BEGIN
 		RAISE EXCEPTION 'refresh of model "%" failed: %', name, msg
 			USING ERRCODE = SQLSTATE, HINT = 'The current model stays in place.';
 	END;
-	kt := affinity.registry_key_types(r.name, t.user_type, t.item_type);
+	kt := affinity.registry_key_types(r.name, t.user_type::text, t.item_type::text);
 	IF r.key_types IS NOT NULL AND kt OPERATOR(pg_catalog.<>) r.key_types THEN
 		RAISE EXCEPTION 'refresh of model "%" is refused: its source query now yields % keys, the model has % keys',
 			name, kt, r.key_types
