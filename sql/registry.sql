@@ -113,3 +113,118 @@ SELECT affinity.describe(model::text::affinity.model)->>'users' FROM reg_f;
 -- unknown user: unchanged; the only user: error
 SELECT affinity.describe(affinity.forget_user(model, -1))->>'checksum' = affinity.describe(model)->>'checksum' AS unchanged FROM reg_m;
 SELECT affinity.forget_user(affinity.fit(1::bigint, 2::bigint, 1::real), 1);
+
+-- Key types come from the query's own columns: text stock codes make a
+-- text-key model, checked at define time and kept across refreshes.
+\set SHOW_CONTEXT never
+CREATE TABLE reg_codes AS
+SELECT 'C-' || customer AS customer_ref, 'SKU-' || product AS sku, qty, customer, product,
+       customer::int AS customer_int, customer::numeric AS customer_num
+FROM reg_buys;
+SELECT affinity.define_model('codes',
+  'SELECT customer_ref AS user_id, sku AS item_id, qty AS weight FROM reg_codes',
+  '{"method": "popularity"}');
+SELECT key_types, keep_versions FROM affinity.models WHERE name = 'codes';
+SELECT r->'version' AS version, r->>'key_types' AS key_types FROM affinity.refresh('codes') r;
+SELECT affinity.describe(affinity.get_model('codes'))->>'key_type' AS model_keys;
+SELECT item_id, pg_typeof(item_id) FROM affinity.top_items(affinity.get_model('codes'), 'C-1', 2);
+-- codes that all look like numbers still make text keys (the column is text)
+SELECT affinity.define_model('numeric_looking',
+  'SELECT customer::text AS user_id, product::text AS item_id, qty AS weight FROM reg_codes',
+  '{"method": "popularity"}');
+SELECT (affinity.refresh('numeric_looking'))->>'key_types' AS key_types;
+SELECT count(*) FROM affinity.top_items(affinity.get_model('numeric_looking'), '1', 3);
+SELECT count(*) FROM affinity.top_items(affinity.get_model('numeric_looking'), 1::bigint, 3);
+-- integer and smallint columns are bigint keys; varchar is text
+SELECT affinity.define_model('ints',
+  'SELECT customer_int AS user_id, product::smallint AS item_id, qty AS weight FROM reg_codes',
+  '{"method": "popularity"}');
+SELECT affinity.define_model('varchars',
+  'SELECT customer_ref::varchar(10) AS user_id, sku::varchar AS item_id, qty AS weight FROM reg_codes',
+  '{"method": "popularity"}');
+SELECT name, key_types FROM affinity.models WHERE name IN ('ints', 'varchars') ORDER BY name;
+SELECT (affinity.refresh('ints'))->>'key_types' AS ints, (affinity.refresh('varchars'))->>'key_types' AS varchars;
+-- domains count as their base type
+CREATE DOMAIN reg_sku AS text CHECK (VALUE LIKE 'SKU-%');
+SELECT affinity.define_model('domains',
+  'SELECT customer_ref AS user_id, sku::reg_sku AS item_id, qty AS weight FROM reg_codes',
+  '{"method": "popularity"}');
+SELECT key_types FROM affinity.models WHERE name = 'domains';
+-- ids that are not keys: numeric, float8, other types; the hint names the cast
+SELECT affinity.define_model('numeric_ids',
+  'SELECT customer_num AS user_id, product AS item_id, qty AS weight FROM reg_codes');
+SELECT affinity.define_model('float_ids',
+  'SELECT customer AS user_id, product::float8 AS item_id, qty AS weight FROM reg_codes');
+SELECT affinity.define_model('date_ids',
+  'SELECT current_date AS user_id, product AS item_id, qty AS weight FROM reg_codes');
+-- mixed pairs are refused, naming the cast
+SELECT affinity.define_model('mixed',
+  'SELECT customer AS user_id, sku AS item_id, qty AS weight FROM reg_codes');
+SELECT affinity.define_model('mixed',
+  'SELECT customer_ref AS user_id, product AS item_id, qty AS weight FROM reg_codes');
+SELECT count(*) AS refused_models_absent FROM affinity.models
+WHERE name IN ('numeric_ids', 'float_ids', 'date_ids', 'mixed');
+-- a refresh whose query now yields other key types is refused; the current
+-- model stays
+SELECT version AS before, affinity.describe(model)->>'checksum' AS checksum FROM affinity.models WHERE name = 'codes' \gset
+UPDATE affinity.models
+SET source_query = 'SELECT customer AS user_id, product AS item_id, qty AS weight FROM reg_codes'
+WHERE name = 'codes';
+SELECT affinity.refresh('codes');
+SELECT version = :before AS same_version, affinity.describe(model)->>'checksum' = :'checksum' AS same_model, key_types
+FROM affinity.models WHERE name = 'codes';
+-- also when a column's type changes under the query
+UPDATE affinity.models
+SET source_query = 'SELECT customer_ref AS user_id, sku AS item_id, qty AS weight FROM reg_codes'
+WHERE name = 'codes';
+ALTER TABLE reg_codes ALTER COLUMN sku TYPE bigint USING substr(sku, 5)::bigint;
+SELECT affinity.refresh('codes');
+ALTER TABLE reg_codes ALTER COLUMN sku TYPE text USING 'SKU-' || sku;
+SELECT (affinity.refresh('codes'))->'version' AS version;
+-- redefinition may change the key types (a notice says so); a kept version
+-- of the old types is not reverted to
+SELECT affinity.define_model('codes',
+  'SELECT customer AS user_id, product AS item_id, qty AS weight FROM reg_codes',
+  '{"method": "popularity"}');
+SELECT key_types FROM affinity.models WHERE name = 'codes';
+SELECT (affinity.refresh('codes'))->'version' AS version;
+SELECT count(*) FROM affinity.top_items(affinity.get_model('codes'), 1::bigint, 3);
+SELECT affinity.revert_model('codes');
+SELECT version, key_types, affinity.describe(model)->>'key_type' AS model_keys
+FROM affinity.models WHERE name = 'codes';
+-- a row inserted without define_model gets its key types at the first refresh
+INSERT INTO affinity.models (name, source_query, options)
+VALUES ('inserted', 'SELECT customer_ref AS user_id, sku AS item_id, qty AS weight FROM public.reg_codes', '{"method": "popularity"}');
+SELECT key_types IS NULL AS not_known_yet FROM affinity.models WHERE name = 'inserted';
+SELECT (affinity.refresh('inserted'))->>'key_types' AS key_types;
+SELECT key_types FROM affinity.models WHERE name = 'inserted';
+-- key_types holds a pair of type names and nothing else
+\set VERBOSITY terse
+UPDATE affinity.models SET key_types = 'text, weight::real, $1) FROM pg_class --' WHERE name = 'inserted';
+\set VERBOSITY default
+
+-- keep_versions through define_model: given, kept on redefinition, trimmed
+-- at once when lowered, refused below 1
+SELECT affinity.define_model('kept',
+  'SELECT customer AS user_id, product AS item_id, qty AS weight FROM reg_codes',
+  '{"method": "popularity"}', keep_versions => 5);
+SELECT (affinity.refresh('kept'))->'version', (affinity.refresh('kept'))->'version',
+       (affinity.refresh('kept'))->'version', (affinity.refresh('kept'))->'version';
+SELECT keep_versions, (SELECT count(*) FROM affinity.model_history h WHERE h.name = 'kept') AS kept
+FROM affinity.models WHERE name = 'kept';
+SELECT affinity.define_model('kept',
+  'SELECT customer AS user_id, product AS item_id, qty AS weight FROM reg_codes',
+  '{"method": "popularity"}');
+SELECT keep_versions FROM affinity.models WHERE name = 'kept';
+SELECT affinity.define_model('kept',
+  'SELECT customer AS user_id, product AS item_id, qty AS weight FROM reg_codes',
+  '{"method": "popularity"}', keep_versions => 2);
+SELECT keep_versions, array_agg(h.version ORDER BY h.version) AS versions
+FROM affinity.models m JOIN affinity.model_history h USING (name) WHERE name = 'kept' GROUP BY 1;
+SELECT affinity.define_model('kept',
+  'SELECT customer AS user_id, product AS item_id, qty AS weight FROM reg_codes',
+  '{"method": "popularity"}', keep_versions => 0);
+SELECT keep_versions FROM affinity.models WHERE name = 'kept';
+DELETE FROM affinity.models WHERE name IN ('codes', 'numeric_looking', 'ints', 'varchars', 'domains', 'inserted', 'kept');
+DROP TABLE reg_codes;
+DROP DOMAIN reg_sku;

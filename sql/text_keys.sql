@@ -56,3 +56,18 @@ SELECT affinity.score(model, 1, 2) FROM txt;
 SELECT * FROM (SELECT affinity.fit(user_id, item_id, 1, '{"factors": 2, "iterations": 1}') AS m
                FROM (VALUES (1::bigint, 2::bigint)) v(user_id, item_id)) s, affinity.top_items(m, 'C-1', 1);
 SELECT affinity.ranking_metrics(model, 1::bigint, 2::bigint, 5) FROM txt;
+
+-- ranking_metrics over text keys: held-out purchases of codes each customer
+-- has not bought (in the own group: the model should find them), an unknown
+-- customer and a code new to the catalogue
+CREATE TABLE txt_held AS
+SELECT c.customer, s.sku
+FROM (SELECT DISTINCT customer FROM txt_buys) c, (SELECT DISTINCT sku FROM txt_buys) s
+WHERE (s.sku <= 'SKU-L') = (c.customer <= 'C-030')
+  AND NOT EXISTS (SELECT FROM txt_buys b WHERE b.customer = c.customer AND b.sku = s.sku)
+UNION ALL VALUES ('C-999', 'SKU-A'), ('C-001', 'SKU-NEW');
+SELECT r->'users' AS users, r->'unknown_users' AS unknown, (r->>'hit_rate')::float8 AS hit_rate,
+       (r->>'precision')::float8 > 0.5 AS in_own_group
+FROM (SELECT affinity.ranking_metrics(t.model, h.customer, h.sku, 3) AS r FROM txt t, txt_held h) s;
+-- untyped literals pick the text overload
+SELECT affinity.ranking_metrics(model, 'C-001', 'SKU-B')->'k' AS k FROM txt;

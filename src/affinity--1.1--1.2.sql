@@ -482,3 +482,408 @@ COMMENT ON AGGREGATE affinity.fit(text, text, real) IS 'fit a model over (user, 
 COMMENT ON AGGREGATE affinity.fit(text, text, real, jsonb) IS 'fit a model over (user, item, weight) rows with text keys; options as jsonb';
 COMMENT ON AGGREGATE affinity.ranking_metrics(affinity.model, bigint, bigint) IS 'ranking metrics at k = 10 over held-out (user, item) rows';
 COMMENT ON AGGREGATE affinity.ranking_metrics(affinity.model, bigint, bigint, integer) IS 'precision, recall, NDCG, MAP, hit rate and coverage at k over held-out (user, item) rows';
+
+-- The registry: key types from the query -----------------------------------
+
+-- A model's key types come from its query's own columns, are checked when it
+-- is defined, stored with it ("user type,item type") and kept: a refresh
+-- whose query now yields other types is refused and the current model stays.
+-- NULL (a row inserted without define_model) means "not known yet": the
+-- first refresh takes them from the query.  The CHECK lists every pair a
+-- model value can describe; which of them a fit accepts is
+-- affinity.registry_key_type_pairs().
+ALTER TABLE affinity.models ADD COLUMN key_types text
+	CONSTRAINT models_key_types_check
+	CHECK (key_types IN ('bigint,bigint', 'text,text', 'bigint,text', 'text,bigint'));
+COMMENT ON COLUMN affinity.models.key_types IS 'the key types of user_id and item_id as the query yields them (''bigint,bigint'' or ''text,text''); a refresh keeps them';
+
+-- The pairs of key types a fit takes: the one place to change when fit
+-- gains an overload (mixed pairs: add 'bigint,text', 'text,bigint').
+CREATE FUNCTION affinity.registry_key_type_pairs()
+	RETURNS text[]
+	LANGUAGE sql IMMUTABLE PARALLEL SAFE
+	SET search_path = pg_catalog, pg_temp
+	RETURN ARRAY['bigint,bigint', 'text,text'];
+COMMENT ON FUNCTION affinity.registry_key_type_pairs() IS 'the (user, item) key type pairs a registry model may have';
+
+-- The key types of a model value, in the registry's form.
+CREATE FUNCTION affinity.model_key_types(m affinity.model)
+	RETURNS text
+	LANGUAGE sql STABLE PARALLEL SAFE STRICT
+	SET search_path = pg_catalog, pg_temp
+	RETURN CASE affinity.describe(m) OPERATOR(pg_catalog.->>) 'key_type'
+		   WHEN 'text' THEN 'text,text' WHEN 'bigint' THEN 'bigint,bigint' END;
+COMMENT ON FUNCTION affinity.model_key_types(affinity.model) IS 'a model''s user and item key types as ''user type,item type''';
+
+-- The types of the query's user_id and item_id columns, without reading a
+-- row: the query, limited to no row, is the inner side of a left join with
+-- one row, whose NULLs carry the columns' types to pg_typeof.  It runs with
+-- its own search_path; weight must cast to real.  The caller is the model's
+-- owner in its own session (define_model, refresh); the tables the query
+-- reads stay locked against type changes until the transaction ends.
+CREATE FUNCTION affinity.registry_query_types(source_query text, query_search_path text,
+		OUT user_type regtype, OUT item_type regtype)
+	LANGUAGE plpgsql VOLATILE
+	SET search_path = pg_catalog, pg_temp
+AS $$
+BEGIN
+	PERFORM pg_catalog.set_config('search_path', query_search_path, true);
+	EXECUTE pg_catalog.format(
+		'SELECT pg_catalog.pg_typeof(q.user_id)::pg_catalog.regtype, pg_catalog.pg_typeof(q.item_id)::pg_catalog.regtype '
+		'FROM (VALUES (1)) AS one (x) LEFT JOIN '
+		'(SELECT user_id, item_id, weight::real AS weight FROM (%s) AS q0 LIMIT 0) AS q ON true',
+		source_query)
+		INTO user_type, item_type;
+	PERFORM pg_catalog.set_config('search_path', 'pg_catalog, pg_temp', true);
+END
+$$;
+COMMENT ON FUNCTION affinity.registry_query_types(text, text) IS 'the types of a source query''s user_id and item_id columns, without reading a row';
+
+-- The registry's key type of one column type (a type name, as regtype
+-- prints it here): smallint, integer and bigint are bigint keys, text and
+-- varchar text keys (domains by their base type); any other type is refused
+-- with the cast to write in the query.
+CREATE FUNCTION affinity.registry_key_type(model_name text, column_name text, column_type text)
+	RETURNS text
+	LANGUAGE plpgsql STABLE
+	SET search_path = pg_catalog, pg_temp
+AS $$
+DECLARE
+	t oid := pg_catalog.to_regtype(column_type)::oid;
+	base oid;
+BEGIN
+	LOOP
+		SELECT y.typbasetype INTO base FROM pg_catalog.pg_type y
+			WHERE y.oid = t AND y.typtype = 'd';
+		EXIT WHEN base IS NULL;
+		t := base;
+	END LOOP;
+	IF t IN ('int2'::regtype, 'int4'::regtype, 'int8'::regtype) THEN
+		RETURN 'bigint';
+	ELSIF t IN ('text'::regtype, 'varchar'::regtype) THEN
+		RETURN 'text';
+	ELSIF t IN ('numeric'::regtype, 'float4'::regtype, 'float8'::regtype) THEN
+		RAISE EXCEPTION 'the source query of model "%" yields % of type %, which cannot be a key',
+			model_name, column_name, column_type
+			USING ERRCODE = 'datatype_mismatch',
+				  DETAIL = 'Keys are bigint (smallint and integer count as bigint) or text; a fractional id would be rounded or written with its decimals.',
+				  HINT = pg_catalog.format('Cast it in the query: %1$s::bigint AS %1$s when every id is a whole number (17850.0 becomes 17850), or %1$s::text AS %1$s to keep each id as written.',
+										   column_name);
+	ELSE
+		RAISE EXCEPTION 'the source query of model "%" yields % of type %, which cannot be a key',
+			model_name, column_name, column_type
+			USING ERRCODE = 'datatype_mismatch',
+				  DETAIL = 'Keys are bigint (smallint and integer count as bigint) or text (varchar counts as text).',
+				  HINT = pg_catalog.format('Cast it in the query: %1$s::text AS %1$s (or %1$s::bigint AS %1$s for whole numbers).',
+										   column_name);
+	END IF;
+END
+$$;
+COMMENT ON FUNCTION affinity.registry_key_type(text, text, text) IS 'bigint or text: the key type of a source query''s column type, or an error naming the cast';
+
+-- The key types of a query's columns as a pair a fit takes, or an error.
+CREATE FUNCTION affinity.registry_key_types(model_name text, user_type text, item_type text)
+	RETURNS text
+	LANGUAGE plpgsql STABLE
+	SET search_path = pg_catalog, pg_temp
+AS $$
+DECLARE
+	u text := affinity.registry_key_type(model_name, 'user_id', user_type);
+	i text := affinity.registry_key_type(model_name, 'item_id', item_type);
+BEGIN
+	IF NOT (u || ',' || i) OPERATOR(pg_catalog.=) ANY (affinity.registry_key_type_pairs()) THEN
+		RAISE EXCEPTION 'the source query of model "%" yields % user ids and % item ids', model_name, u, i
+			USING ERRCODE = 'feature_not_supported',
+				  DETAIL = pg_catalog.format('A model''s user and item keys have one type in this version: %s.',
+											 pg_catalog.array_to_string(affinity.registry_key_type_pairs(), ' or ')),
+				  HINT = CASE WHEN u = 'bigint'
+						 THEN 'Cast the users to text in the query (user_id::text AS user_id) and serve with text keys.'
+						 ELSE 'Cast the items to text in the query (item_id::text AS item_id) and serve with text keys.' END;
+	END IF;
+	RETURN u || ',' || i;
+END
+$$;
+COMMENT ON FUNCTION affinity.registry_key_types(text, text, text) IS 'the ''user type,item type'' pair of a source query''s key columns, or an error naming the casts';
+
+-- 1.1 rows keep the key types of their current model; 1.1 refreshes built
+-- bigint keys, so a model never fitted gets bigint keys.  A stored value
+-- that cannot be read leaves NULL (the next refresh takes the query's).
+ALTER TABLE affinity.models DISABLE TRIGGER models_guard;
+DO $$
+DECLARE
+	r record;
+BEGIN
+	FOR r IN SELECT m.name, m.model FROM affinity.models m LOOP
+		BEGIN
+			UPDATE affinity.models m
+				SET key_types = coalesce(affinity.model_key_types(r.model), 'bigint,bigint')
+				WHERE m.name = r.name;
+		EXCEPTION WHEN OTHERS THEN
+			NULL;
+		END;
+	END LOOP;
+END
+$$;
+ALTER TABLE affinity.models ENABLE TRIGGER models_guard;
+
+-- define_model gains keep_versions (NULL: 3 for a new model, unchanged for
+-- a redefined one) and stores the query's key types.
+DROP FUNCTION affinity.define_model(text, text, jsonb, text);
+CREATE FUNCTION affinity.define_model(name text, source_query text, options jsonb DEFAULT '{}',
+		query_search_path text DEFAULT pg_catalog.current_setting('search_path'),
+		keep_versions integer DEFAULT NULL)
+	RETURNS void
+	LANGUAGE plpgsql VOLATILE
+	SET search_path = pg_catalog, pg_temp
+AS $$
+DECLARE
+	s record;
+	r affinity.models;
+	t record;
+	kt text;
+	kept integer;
+BEGIN
+	IF name IS NULL OR source_query IS NULL OR options IS NULL OR query_search_path IS NULL THEN
+		RAISE EXCEPTION 'name, source_query, options and query_search_path must not be NULL'
+			USING ERRCODE = 'null_value_not_allowed';
+	END IF;
+	IF pg_catalog.jsonb_typeof(options) OPERATOR(pg_catalog.<>) 'object' THEN
+		RAISE EXCEPTION 'options must be a jsonb object'
+			USING ERRCODE = 'invalid_parameter_value',
+				  DETAIL = pg_catalog.format('The options given are %s.', options);
+	END IF;
+	IF keep_versions < 1 THEN
+		RAISE EXCEPTION 'keep_versions must be at least 1'
+			USING ERRCODE = 'invalid_parameter_value',
+				  DETAIL = pg_catalog.format('keep_versions is %s.', keep_versions),
+				  HINT = 'The history keeps this many models of the name for revert_model; the current model is always kept.';
+	END IF;
+	SELECT * INTO r FROM affinity.models m WHERE m.name = define_model.name;
+	IF FOUND THEN
+		PERFORM affinity.require_model_owner(r.name, r.owner, r.owner_name, 'redefinition');
+	ELSE
+		s := affinity.registry_session();
+		IF s.login_role IS DISTINCT FROM s.acting_role OR s.session_role IS DISTINCT FROM s.acting_role THEN
+			RAISE EXCEPTION 'define_model must run in a session logged in as the role that will own model "%"', name
+				USING ERRCODE = 'insufficient_privilege',
+					  DETAIL = pg_catalog.format('The current user is %s, the session user %s, the login role %s.',
+												 current_user, session_user,
+												 coalesce((SELECT x.rolname FROM pg_catalog.pg_roles x WHERE x.oid = s.login_role),
+														  'unknown')),
+					  HINT = pg_catalog.format('Connect as %s: a model''s query is checked and run only in sessions logged in as its owner.', current_user);
+		END IF;
+	END IF;
+	-- the query must yield user_id, item_id and weight; the keys' types are
+	-- the ones it yields (planned and started, no row read)
+	BEGIN
+		t := affinity.registry_query_types(source_query, query_search_path);
+	EXCEPTION WHEN OTHERS THEN
+		RAISE EXCEPTION 'the source query of model "%" cannot feed a fit', name
+			USING ERRCODE = 'invalid_parameter_value',
+				  DETAIL = SQLERRM,
+				  HINT = 'The query must yield columns user_id and item_id (bigint or text) and weight (castable to real).';
+	END;
+	kt := affinity.registry_key_types(name, t.user_type::text, t.item_type::text);
+	IF r.model IS NOT NULL AND r.key_types IS DISTINCT FROM kt THEN
+		RAISE NOTICE 'model "%" takes % keys from its next refresh; its current model has % keys',
+			name, kt, coalesce(r.key_types, affinity.model_key_types(r.model))
+			USING HINT = 'Serving calls and held-out tables must pass keys of the new types after the next refresh.';
+	END IF;
+	INSERT INTO affinity.models AS m (name, source_query, options, search_path, key_types, keep_versions)
+	VALUES (define_model.name, define_model.source_query, define_model.options,
+			define_model.query_search_path, kt, coalesce(define_model.keep_versions, 3))
+	ON CONFLICT ON CONSTRAINT models_pkey DO UPDATE
+		SET source_query = EXCLUDED.source_query, options = EXCLUDED.options,
+			search_path = EXCLUDED.search_path, key_types = EXCLUDED.key_types,
+			keep_versions = coalesce(define_model.keep_versions, m.keep_versions)
+	RETURNING m.keep_versions INTO kept;
+	-- a smaller history is trimmed now, as the next refresh would
+	IF define_model.keep_versions IS NOT NULL THEN
+		DELETE FROM affinity.model_history h
+			WHERE h.name = define_model.name
+			  AND h.version <= (SELECT greatest(max(x.version), max(m.version))
+								FROM affinity.model_history x, affinity.models m
+								WHERE x.name = define_model.name AND m.name = define_model.name) - kept;
+	END IF;
+END
+$$;
+COMMENT ON FUNCTION affinity.define_model(text, text, jsonb, text, integer) IS 'register or redefine a named model: its query (checked in the owner''s session), options, search_path and history size, with the key types its query yields';
+
+-- refresh: the query's key types are checked against the stored ones before
+-- the fit, and the fit is called for exactly those types.
+CREATE OR REPLACE FUNCTION affinity.refresh(name text)
+	RETURNS jsonb
+	LANGUAGE plpgsql VOLATILE
+	SET search_path = pg_catalog, pg_temp
+AS $$
+DECLARE
+	r affinity.models;
+	s record;
+	t record;
+	kt text;
+	fit_call text;
+	fitted affinity.model;
+	started timestamptz := clock_timestamp();
+	d jsonb;
+	result jsonb;
+	new_version integer;
+	msg text;
+	detail text;
+BEGIN
+	-- the owner check comes before the row lock, which needs UPDATE rights
+	SELECT * INTO r FROM affinity.models m WHERE m.name = refresh.name;
+	IF NOT FOUND THEN
+		RAISE EXCEPTION 'no model named "%"', name
+			USING ERRCODE = 'undefined_object',
+				  HINT = 'Register it first with affinity.define_model(name, source_query, options).';
+	END IF;
+	PERFORM affinity.require_model_owner(r.name, r.owner, r.owner_name, 'refresh');
+	-- one refresh of a name at a time: a second one waits for the first;
+	-- the row may have changed meanwhile, so it is checked again
+	SELECT * INTO r FROM affinity.models m WHERE m.name = refresh.name FOR UPDATE;
+	IF NOT FOUND THEN
+		RAISE EXCEPTION 'no model named "%"', name USING ERRCODE = 'undefined_object';
+	END IF;
+	PERFORM affinity.require_model_owner(r.name, r.owner, r.owner_name, 'refresh');
+	-- the key types the query yields now (the tables it reads stay locked
+	-- against type changes until the end of the transaction)
+	BEGIN
+		t := affinity.registry_query_types(r.source_query, r.search_path);
+	EXCEPTION WHEN OTHERS THEN
+		GET STACKED DIAGNOSTICS msg = MESSAGE_TEXT;
+		RAISE EXCEPTION 'refresh of model "%" failed: %', name, msg
+			USING ERRCODE = SQLSTATE, HINT = 'The current model stays in place.';
+	END;
+	kt := affinity.registry_key_types(r.name, t.user_type::text, t.item_type::text);
+	IF r.key_types IS NOT NULL AND kt OPERATOR(pg_catalog.<>) r.key_types THEN
+		RAISE EXCEPTION 'refresh of model "%" is refused: its source query now yields % keys, the model has % keys',
+			name, kt, r.key_types
+			USING ERRCODE = 'datatype_mismatch',
+				  DETAIL = pg_catalog.format('user_id is %s and item_id is %s; the model was defined with keys %s, which its serving calls and held-out tables use.',
+											 t.user_type, t.item_type, r.key_types),
+				  HINT = 'The current model stays in place. Cast the columns back in the query, or redefine the model with define_model to change its key types.';
+	END IF;
+	-- kt is one of the pairs checked above: only these two type names enter the call
+	fit_call := pg_catalog.format('SELECT affinity.fit(user_id::%s, item_id::%s, weight::real, $1) FROM (%s) AS q',
+								  CASE pg_catalog.split_part(kt, ',', 1) WHEN 'text' THEN 'text' ELSE 'bigint' END,
+								  CASE pg_catalog.split_part(kt, ',', 2) WHEN 'text' THEN 'text' ELSE 'bigint' END,
+								  r.source_query);
+	PERFORM set_config('search_path', r.search_path, true);
+	BEGIN
+		EXECUTE fit_call INTO fitted USING r.options;
+		s := affinity.registry_session();
+		IF s.session_role IS DISTINCT FROM r.owner::oid OR s.acting_role IS DISTINCT FROM r.owner::oid THEN
+			RAISE EXCEPTION 'the source query switched to role %', current_user
+				USING ERRCODE = 'insufficient_privilege',
+					  DETAIL = pg_catalog.format('A refresh runs as the model''s owner %s from start to end.', r.owner_name);
+		END IF;
+		PERFORM set_config('search_path', 'pg_catalog, pg_temp', true);
+	EXCEPTION WHEN OTHERS THEN
+		GET STACKED DIAGNOSTICS msg = MESSAGE_TEXT, detail = PG_EXCEPTION_DETAIL;
+		IF coalesce(detail, '') = '' THEN
+			RAISE EXCEPTION 'refresh of model "%" failed: %', name, msg
+				USING ERRCODE = SQLSTATE, HINT = 'The current model stays in place.';
+		END IF;
+		RAISE EXCEPTION 'refresh of model "%" failed: %', name, msg
+			USING ERRCODE = SQLSTATE, DETAIL = detail,
+				  HINT = 'The current model stays in place.';
+	END;
+	-- after a revert the current version is not the newest one kept
+	SELECT greatest(r.version, coalesce(max(h.version), 0)) + 1 INTO new_version
+		FROM affinity.model_history h WHERE h.name = refresh.name;
+	d := affinity.describe(fitted);
+	result := jsonb_build_object(
+		'name', name, 'version', new_version, 'method', d->'method', 'key_types', kt,
+		'rows', d->'rows_read', 'users', d->'users', 'items', d->'items',
+		'interactions', d->'interactions', 'fit_seconds', d->'fit_seconds',
+		'seconds', extract(epoch FROM clock_timestamp() - started),
+		'final_loss', d->'loss'->-1, 'size_bytes', d->'size_bytes');
+	UPDATE affinity.models m
+		SET model = fitted, version = new_version, fitted_at = now(), stats = result, key_types = kt
+		WHERE m.name = refresh.name;
+	INSERT INTO affinity.model_history (name, version, model, fitted_at, stats)
+		VALUES (name, new_version, fitted, now(), result);
+	DELETE FROM affinity.model_history h
+		WHERE h.name = refresh.name AND h.version <= new_version - r.keep_versions;
+	RETURN result;
+END
+$$;
+
+-- revert_model: a kept version of other key types (from before a
+-- redefinition) is not brought back.
+CREATE OR REPLACE FUNCTION affinity.revert_model(name text, to_version integer DEFAULT NULL)
+	RETURNS jsonb
+	LANGUAGE plpgsql VOLATILE
+	SET search_path = pg_catalog, pg_temp
+AS $$
+DECLARE
+	r affinity.models;
+	h affinity.model_history;
+	hk text;
+BEGIN
+	SELECT * INTO r FROM affinity.models m WHERE m.name = revert_model.name;
+	IF NOT FOUND THEN
+		RAISE EXCEPTION 'no model named "%"', name USING ERRCODE = 'undefined_object';
+	END IF;
+	PERFORM affinity.require_model_owner(r.name, r.owner, r.owner_name, 'revert');
+	SELECT * INTO r FROM affinity.models m WHERE m.name = revert_model.name FOR UPDATE;
+	IF NOT FOUND THEN
+		RAISE EXCEPTION 'no model named "%"', name USING ERRCODE = 'undefined_object';
+	END IF;
+	PERFORM affinity.require_model_owner(r.name, r.owner, r.owner_name, 'revert');
+	SELECT * INTO h FROM affinity.model_history x
+		WHERE x.name = revert_model.name
+		  AND x.version = coalesce(to_version,
+								   (SELECT max(y.version) FROM affinity.model_history y
+									WHERE y.name = revert_model.name AND y.version < r.version));
+	IF NOT FOUND THEN
+		RAISE EXCEPTION 'model "%" has no version % in its history', name,
+			coalesce(to_version::text, 'before ' || r.version)
+			USING ERRCODE = 'undefined_object',
+				  HINT = 'Kept versions are listed in affinity.model_history.';
+	END IF;
+	hk := affinity.model_key_types(h.model);
+	IF r.key_types IS NOT NULL AND hk IS DISTINCT FROM r.key_types THEN
+		RAISE EXCEPTION 'version % of model "%" has % keys, the model has % keys', h.version, name, hk, r.key_types
+			USING ERRCODE = 'datatype_mismatch',
+				  DETAIL = 'The version was fitted before the model was redefined with other key types.',
+				  HINT = 'The current model stays in place; revert to a version fitted since the redefinition.';
+	END IF;
+	UPDATE affinity.models m
+		SET model = h.model, version = h.version, fitted_at = h.fitted_at, stats = h.stats
+		WHERE m.name = revert_model.name;
+	RETURN jsonb_build_object('name', name, 'version', h.version, 'fitted_at', h.fitted_at);
+END
+$$;
+
+-- ranking_metrics over text keys -------------------------------------------
+
+-- The same transition function reads its key types from its arguments.
+CREATE FUNCTION affinity.ranking_metrics_transfn(internal, affinity.model, text, text, integer)
+	RETURNS internal
+	AS 'MODULE_PATHNAME', 'ranking_metrics_transfn' LANGUAGE C PARALLEL SAFE;
+CREATE FUNCTION affinity.ranking_metrics_transfn(internal, affinity.model, text, text)
+	RETURNS internal
+	AS 'MODULE_PATHNAME', 'ranking_metrics_transfn' LANGUAGE C PARALLEL SAFE;
+CREATE AGGREGATE affinity.ranking_metrics(model affinity.model, user_id text, item_id text, k integer) (
+	SFUNC = affinity.ranking_metrics_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.ranking_metrics_finalfn,
+	FINALFUNC_MODIFY = SHAREABLE,
+	COMBINEFUNC = affinity.ranking_metrics_combinefn,
+	SERIALFUNC = affinity.ranking_metrics_serialfn,
+	DESERIALFUNC = affinity.ranking_metrics_deserialfn,
+	PARALLEL = SAFE
+);
+CREATE AGGREGATE affinity.ranking_metrics(model affinity.model, user_id text, item_id text) (
+	SFUNC = affinity.ranking_metrics_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.ranking_metrics_finalfn,
+	FINALFUNC_MODIFY = SHAREABLE,
+	COMBINEFUNC = affinity.ranking_metrics_combinefn,
+	SERIALFUNC = affinity.ranking_metrics_serialfn,
+	DESERIALFUNC = affinity.ranking_metrics_deserialfn,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.ranking_metrics(affinity.model, text, text) IS 'ranking metrics at k = 10 over held-out (user, item) rows with text keys';
+COMMENT ON AGGREGATE affinity.ranking_metrics(affinity.model, text, text, integer) IS 'precision, recall, NDCG, MAP, hit rate and coverage at k over held-out (user, item) rows with text keys';

@@ -23,18 +23,36 @@
  * A model is identified by its header (size, checksum, content digest),
  * read from the value inline or from the first TOAST chunk; a row that
  * brings the same TOAST pointer as the last accepted one is not read again.
- * The final function sorts the pairs (FINALFUNC_MODIFY = SHAREABLE).
+ * The final function sorts the pairs in place and works on a copy of them
+ * (FINALFUNC_MODIFY = SHAREABLE: it may run twice on one state).
+ *
+ * Keys are bigint or text, per side, as the aggregate's signature says (one
+ * transition function serves every overload: it reads its argument types).
+ * A text key is kept in the state's arena, length first, and the pair holds
+ * its offset there.  The final function sorts the pairs by their keys, then
+ * resolves each key to its index in the model (text_key_index compares the
+ * text itself, so an unknown text never matches); keys the model does not
+ * know get distinct negative numbers, and the metrics are computed over
+ * indices alone.
  */
 #include "serving_common.h"
 
 #include <math.h>
 
 #include "access/detoast.h"
+#include "catalog/pg_type_d.h"
 #include "libpq/pqformat.h"
 #include "miscadmin.h"
 #include "utils/float.h"
 #include "utils/memutils.h"
 
+#include "text_keys.h"
+
+/*
+ * A held-out pair: each side a bigint key or the arena offset of a text key
+ * as collected; in the copy resolve_pairs() makes, the model's index of each
+ * key, or a negative number for a key the model does not know.
+ */
 typedef struct HeldOut
 {
 	int64		user;
@@ -57,6 +75,12 @@ typedef struct MetricsState
 	bool		have_ptr;		/* last_ptr holds an accepted TOAST pointer */
 	struct varatt_external last_ptr;
 	int32		k;
+	bool		kinds_set;		/* user_text and item_text are known */
+	bool		user_text;		/* the user keys are text */
+	bool		item_text;		/* the item keys are text */
+	char	   *arena;			/* text keys: int32 length, then the bytes */
+	int64		arena_len;
+	int64		arena_cap;
 	HeldOut    *pairs;
 	int64		n;
 	int64		cap;
@@ -91,6 +115,68 @@ state_add(MetricsState *st, int64 user, int64 item)
 	st->pairs[st->n].user = user;
 	st->pairs[st->n].item = item;
 	st->n++;
+}
+
+/* Copy len bytes of text into the arena, length first; returns its offset. */
+static int64
+arena_add(MetricsState *st, const char *s, int32 len)
+{
+	int64		need = (int64) sizeof(int32) + len;
+	int64		off = st->arena_len;
+
+	if (st->arena_len > (int64) MaxAllocHugeSize - need)
+		ereport(ERROR,
+				(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
+				 errmsg("too many held-out text keys for one affinity.ranking_metrics")));
+	if (st->arena_len + need > st->arena_cap)
+	{
+		int64		cap = Max(st->arena_cap, 4096);
+
+		while (cap < st->arena_len + need)
+			cap = Min(cap * 2, (int64) MaxAllocHugeSize);
+		st->arena = st->arena
+			? repalloc_huge(st->arena, cap)
+			: MemoryContextAllocHuge(st->cxt, cap);
+		st->arena_cap = cap;
+	}
+	memcpy(st->arena + off, &len, sizeof(int32));
+	memcpy(st->arena + off + sizeof(int32), s, len);
+	st->arena_len += need;
+	return off;
+}
+
+/* The text key stored at offset off of the arena. */
+static const char *
+arena_text(const MetricsState *st, int64 off, int32 *len)
+{
+	memcpy(len, st->arena + off, sizeof(int32));
+	return st->arena + off + sizeof(int32);
+}
+
+/* Fix the key kinds of a state; every state of one aggregate has the same. */
+static void
+state_set_kinds(MetricsState *st, bool user_text, bool item_text)
+{
+	if (!st->kinds_set)
+	{
+		st->kinds_set = true;
+		st->user_text = user_text;
+		st->item_text = item_text;
+	}
+	else if (st->user_text != user_text || st->item_text != item_text)
+		elog(ERROR, "ranking_metrics states of different key types");
+}
+
+/* The held-out key of one side of a row: a bigint, or a text into the arena. */
+static int64
+key_value(FunctionCallInfo fcinfo, MetricsState *st, int argno, bool text_key)
+{
+	text	   *t;
+
+	if (!text_key)
+		return PG_GETARG_INT64(argno);
+	t = PG_GETARG_TEXT_PP(argno);
+	return arena_add(st, VARDATA_ANY(t), (int32) VARSIZE_ANY_EXHDR(t));
 }
 
 /*
@@ -191,16 +277,29 @@ state_set_model(MetricsState *st, struct varlena *raw, int32 k)
 
 PG_FUNCTION_INFO_V1(ranking_metrics_transfn);
 
-/* (state, model, user_id, item_id [, k = 10]) -> state; NULL rows are skipped */
+/*
+ * (state, model, user_id, item_id [, k = 10]) -> state; NULL rows are
+ * skipped.  user_id and item_id are bigint or text, as the overload says.
+ */
 Datum
 ranking_metrics_transfn(PG_FUNCTION_ARGS)
 {
 	MemoryContext aggcxt;
 	MetricsState *st;
+	int64		user;
 
 	if (!AggCheckCallContext(fcinfo, &aggcxt))
 		elog(ERROR, "ranking_metrics_transfn called in non-aggregate context");
 	st = PG_ARGISNULL(0) ? state_new(aggcxt) : (MetricsState *) PG_GETARG_POINTER(0);
+	if (!st->kinds_set)
+	{
+		Oid			ut = get_fn_expr_argtype(fcinfo->flinfo, 2);
+		Oid			it = get_fn_expr_argtype(fcinfo->flinfo, 3);
+
+		if (!OidIsValid(ut) || !OidIsValid(it))
+			elog(ERROR, "ranking_metrics_transfn cannot determine its key types");
+		state_set_kinds(st, ut == TEXTOID, it == TEXTOID);
+	}
 	if (PG_ARGISNULL(1) || PG_ARGISNULL(2) || PG_ARGISNULL(3))
 		PG_RETURN_POINTER(st);
 	if (PG_NARGS() > 4 && PG_ARGISNULL(4))
@@ -209,7 +308,8 @@ ranking_metrics_transfn(PG_FUNCTION_ARGS)
 				 errmsg("argument \"k\" must not be NULL")));
 	state_set_model(st, (struct varlena *) PG_GETARG_RAW_VARLENA_P(1),
 					PG_NARGS() > 4 ? PG_GETARG_INT32(4) : 10);
-	state_add(st, PG_GETARG_INT64(2), PG_GETARG_INT64(3));
+	user = key_value(fcinfo, st, 2, st->user_text);
+	state_add(st, user, key_value(fcinfo, st, 3, st->item_text));
 	PG_RETURN_POINTER(st);
 }
 
@@ -222,6 +322,7 @@ ranking_metrics_combinefn(PG_FUNCTION_ARGS)
 	MetricsState *a;
 	MetricsState *b;
 	int64		i;
+	int64		base;
 
 	if (!AggCheckCallContext(fcinfo, &aggcxt))
 		elog(ERROR, "ranking_metrics_combinefn called in non-aggregate context");
@@ -231,8 +332,27 @@ ranking_metrics_combinefn(PG_FUNCTION_ARGS)
 	a = PG_ARGISNULL(0) ? state_new(aggcxt) : (MetricsState *) PG_GETARG_POINTER(0);
 	if (b->model != NULL)
 		state_set_model(a, b->model, b->k);
+	if (!b->kinds_set)
+		PG_RETURN_POINTER(a);
+	state_set_kinds(a, b->user_text, b->item_text);
+	/* b's texts go to the end of a's arena, one by one (offsets move by base) */
+	base = a->arena_len;
+	if (b->arena_len > 0)
+	{
+		int64		off = 0;
+
+		while (off < b->arena_len)
+		{
+			int32		len;
+			const char *t = arena_text(b, off, &len);
+
+			arena_add(a, t, len);
+			off += (int64) sizeof(int32) + len;
+		}
+	}
 	for (i = 0; i < b->n; i++)
-		state_add(a, b->pairs[i].user, b->pairs[i].item);
+		state_add(a, b->pairs[i].user + (a->user_text ? base : 0),
+				  b->pairs[i].item + (a->item_text ? base : 0));
 	PG_RETURN_POINTER(a);
 }
 
@@ -250,6 +370,12 @@ ranking_metrics_serialfn(PG_FUNCTION_ARGS)
 	pq_sendint32(&buf, st->model ? (int32) VARSIZE_ANY(st->model) : 0);
 	if (st->model)
 		pq_sendbytes(&buf, (char *) st->model, VARSIZE_ANY(st->model));
+	pq_sendbyte(&buf, st->kinds_set);
+	pq_sendbyte(&buf, st->user_text);
+	pq_sendbyte(&buf, st->item_text);
+	pq_sendint64(&buf, st->arena_len);
+	if (st->arena_len > 0)
+		pq_sendbytes(&buf, st->arena, (int) st->arena_len);
 	pq_sendint64(&buf, st->n);
 	for (i = 0; i < st->n; i++)
 	{
@@ -271,6 +397,10 @@ ranking_metrics_deserialfn(PG_FUNCTION_ARGS)
 	int32		len;
 	int64		n;
 	int64		i;
+	bool		kinds_set;
+	bool		user_text;
+	bool		item_text;
+	int64		arena_len;
 
 	if (!AggCheckCallContext(fcinfo, &aggcxt))
 		elog(ERROR, "ranking_metrics_deserialfn called in non-aggregate context");
@@ -288,6 +418,20 @@ ranking_metrics_deserialfn(PG_FUNCTION_ARGS)
 		model_identity(st->model, &st->id);
 		remember_pointer(st, st->model);
 	}
+	kinds_set = pq_getmsgbyte(&buf) != 0;
+	user_text = pq_getmsgbyte(&buf) != 0;
+	item_text = pq_getmsgbyte(&buf) != 0;
+	if (kinds_set)
+		state_set_kinds(st, user_text, item_text);
+	arena_len = pq_getmsgint64(&buf);
+	if (arena_len < 0 || arena_len > buf.len - buf.cursor)
+		elog(ERROR, "ranking_metrics state of a bad size");
+	if (arena_len > 0)
+	{
+		st->arena = MemoryContextAllocHuge(aggcxt, arena_len);
+		memcpy(st->arena, pq_getmsgbytes(&buf, (int) arena_len), arena_len);
+		st->arena_len = st->arena_cap = arena_len;
+	}
 	n = pq_getmsgint64(&buf);
 	for (i = 0; i < n; i++)
 	{
@@ -299,15 +443,109 @@ ranking_metrics_deserialfn(PG_FUNCTION_ARGS)
 	PG_RETURN_POINTER(st);
 }
 
+/* Order of two keys of one side: bigint by value, text by bytes then length. */
 static int
-cmp_heldout(const void *a, const void *b)
+cmp_key(const MetricsState *st, bool text_key, int64 a, int64 b)
 {
+	const char *pa;
+	const char *pb;
+	int32		la;
+	int32		lb;
+	int			c;
+
+	if (!text_key)
+		return a < b ? -1 : (a > b);
+	pa = arena_text(st, a, &la);
+	pb = arena_text(st, b, &lb);
+	c = memcmp(pa, pb, Min(la, lb));
+	if (c != 0)
+		return c < 0 ? -1 : 1;
+	return la < lb ? -1 : (la > lb);
+}
+
+/* qsort_arg comparator of held-out pairs: by user key, then item key. */
+static int
+cmp_heldout(const void *a, const void *b, void *arg)
+{
+	const MetricsState *st = arg;
 	const HeldOut *x = a;
 	const HeldOut *y = b;
+	int			c = cmp_key(st, st->user_text, x->user, y->user);
 
-	if (x->user != y->user)
-		return x->user < y->user ? -1 : 1;
-	return x->item < y->item ? -1 : (x->item > y->item);
+	if (c != 0)
+		return c;
+	return cmp_key(st, st->item_text, x->item, y->item);
+}
+
+/*
+ * Whether the model's user (or item) keys are text.  The model format has
+ * one key type for both sides today; a model of mixed keys answers per side.
+ */
+static bool
+model_side_text(const AffModelView *v, bool users)
+{
+	(void) users;
+	return v->h->key_type == AFF_KEYS_TEXT;
+}
+
+/* The model's index of one held-out key, or -1 when it does not know it. */
+static int64
+key_index(const MetricsState *st, const AffModelView *v, bool users, int64 key)
+{
+	if (users ? st->user_text : st->item_text)
+	{
+		int32		len;
+		const char *s = arena_text(st, key, &len);
+
+		return text_key_index(v, users, s, len);
+	}
+	return aff_find_key(users ? v->user_keys : v->item_keys,
+						users ? v->h->n_users : v->h->n_items, key);
+}
+
+/*
+ * Sort the pairs by their keys and return a copy in which each key is its
+ * index in the model; keys the model does not know get distinct negative
+ * numbers (one per distinct key within a user), so that equal keys stay
+ * equal and adjacent.  The state keeps its keys, sorted: the final function
+ * may run again on it (FINALFUNC_MODIFY = SHAREABLE).
+ */
+static HeldOut *
+resolve_pairs(MetricsState *st, const AffModelView *v)
+{
+	HeldOut    *out = palloc_extended(sizeof(HeldOut) * Max(st->n, 1), MCXT_ALLOC_HUGE);
+	HeldOut		prev = {0, 0};
+	int64		unknown = 0;
+	int64		u = -1;
+	int64		it = -1;
+	int64		j;
+
+	qsort_arg(st->pairs, st->n, sizeof(HeldOut), cmp_heldout, st);
+	for (j = 0; j < st->n; j++)
+	{
+		HeldOut		raw = st->pairs[j];
+		bool		new_user = j == 0 || cmp_key(st, st->user_text, raw.user, prev.user) != 0;
+		bool		new_item = new_user || cmp_key(st, st->item_text, raw.item, prev.item) != 0;
+
+		if ((j & 0xFFFF) == 0)
+			CHECK_FOR_INTERRUPTS();
+		if (new_user)
+		{
+			u = key_index(st, v, true, raw.user);
+			if (u < 0)
+				u = -(++unknown);
+		}
+		if (new_item)
+		{
+			it = key_index(st, v, false, raw.item);
+			if (it < 0)
+				it = -(++unknown);
+		}
+		prev = raw;
+		out[j].user = u;
+		out[j].item = it;
+	}
+	return out;
 }
 
 typedef struct Sums
@@ -384,8 +622,8 @@ score_user(const AffModelView *v, int64 u, int64 k, const uint8 *rel, int64 n_re
 }
 
 /*
- * Walk the sorted pairs user by user; rel is a mask over item indices that
- * is set and cleared per user.
+ * Walk the resolved pairs (resolve_pairs) user by user; rel is a mask over
+ * item indices that is set and cleared per user.
  */
 static void
 evaluate(const AffModelView *v, HeldOut *pairs, int64 n, int64 k, Sums *s)
@@ -395,7 +633,6 @@ evaluate(const AffModelView *v, HeldOut *pairs, int64 n, int64 k, Sums *s)
 	float	   *scores = palloc_extended(sizeof(float) * v->h->n_items, MCXT_ALLOC_HUGE);
 	int64		a = 0;
 
-	qsort(pairs, n, sizeof(HeldOut), cmp_heldout);
 	while (a < n)
 	{
 		int64		b = a;
@@ -406,7 +643,7 @@ evaluate(const AffModelView *v, HeldOut *pairs, int64 n, int64 k, Sums *s)
 		CHECK_FOR_INTERRUPTS();
 		while (b < n && pairs[b].user == pairs[a].user)
 			b++;
-		u = aff_find_key(v->user_keys, v->h->n_users, pairs[a].user);
+		u = pairs[a].user;
 		if (u < 0)
 		{
 			s->unknown++;
@@ -417,7 +654,7 @@ evaluate(const AffModelView *v, HeldOut *pairs, int64 n, int64 k, Sums *s)
 			rel[v->seen_items[j]] = 2;	/* in training: not relevant */
 		for (j = a; j < b; j++)
 		{
-			int64		it = aff_find_key(v->item_keys, v->h->n_items, pairs[j].item);
+			int64		it = pairs[j].item;
 
 			/* items new to the catalogue are relevant but never shown */
 			if (j > a && pairs[j].item == pairs[j - 1].item)
@@ -438,7 +675,7 @@ evaluate(const AffModelView *v, HeldOut *pairs, int64 n, int64 k, Sums *s)
 			rel[v->seen_items[j]] = 0;
 		for (j = a; j < b; j++)
 		{
-			int64		it = aff_find_key(v->item_keys, v->h->n_items, pairs[j].item);
+			int64		it = pairs[j].item;
 
 			if (it >= 0)
 				rel[it] = 0;
@@ -468,18 +705,23 @@ ranking_metrics_finalfn(PG_FUNCTION_ARGS)
 	m = (struct varlena *) PG_DETOAST_DATUM_COPY(PointerGetDatum(st->model));
 	if (aff_model_view((const uint8 *) m, VARSIZE(m), &v, &err) != AFF_OK)
 		report_engine_error(&err);
-	if (v.h->key_type == AFF_KEYS_TEXT)
+	if (model_side_text(&v, true) != st->user_text || model_side_text(&v, false) != st->item_text)
 		ereport(ERROR,
-				(errcode(ERRCODE_FEATURE_NOT_SUPPORTED),
-				 errmsg("ranking_metrics takes bigint keys in this version"),
-				 errdetail("This model was fitted on text user and item ids."),
-				 errhint("Evaluate with top_items over the held-out users, or map the texts to bigint ids for the evaluation.")));
+				(errcode(ERRCODE_DATATYPE_MISMATCH),
+				 errmsg("this model has %s user ids and %s item ids, but ranking_metrics was given %s and %s",
+						model_side_text(&v, true) ? "text" : "bigint",
+						model_side_text(&v, false) ? "text" : "bigint",
+						st->user_text ? "text" : "bigint", st->item_text ? "text" : "bigint"),
+				 errdetail("Held-out keys are compared with the keys the model was fitted on."),
+				 errhint("Pass the held-out columns as the model's key types, for example user_id::%s and item_id::%s.",
+						 model_side_text(&v, true) ? "text" : "bigint",
+						 model_side_text(&v, false) ? "text" : "bigint")));
 	if (st->k == 0)
 		ereport(ERROR,
 				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
 				 errmsg("k must be at least 1 for ranking metrics")));
 	memset(&s, 0, sizeof(s));
-	evaluate(&v, st->pairs, st->n, st->k, &s);
+	evaluate(&v, resolve_pairs(st, &v), st->n, st->k, &s);
 	nu = s.users > 0 ? (double) s.users : 1.0;
 	initStringInfo(&out);
 	appendStringInfo(&out, "{\"users\": " INT64_FORMAT ", \"k\": %d, \"precision\": %s, "
