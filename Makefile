@@ -47,7 +47,10 @@ BLAS_CFLAGS := $(shell pkg-config --cflags openblas 2>/dev/null)
 BLAS_LIBS := $(shell pkg-config --libs openblas 2>/dev/null || echo -lopenblas)
 
 PG_CPPFLAGS = $(BLAS_CFLAGS) -DAFFINITY_VERSION=\"$(EXTVERSION)\"
-PG_CFLAGS = -std=gnu11 -O3 -pthread -fopenmp-simd
+# Only what PostgreSQL looks up is exported (PGDLLEXPORT, src/pg/affinity_pg.h):
+# the library is loaded into the server's namespace, where any other exported
+# name could clash with the server's or another module's
+PG_CFLAGS = -std=gnu11 -O3 -pthread -fopenmp-simd -fvisibility=hidden
 SHLIB_LINK = $(BLAS_LIBS) -pthread -lm
 
 EXTRA_CLEAN = results regression.diffs regression.out

@@ -39,7 +39,35 @@ REVOKE ALL ON affinity.models, upg_buys FROM regress_upg_gone;
 DROP ROLE regress_upg_gone;
 SELECT name, owner = current_user AS mine FROM affinity.models ORDER BY name;
 
+-- A database created by a library before 1.2 names the old symbols, most
+-- without the affinity_ prefix (top_items, score, describe, model_in, ...):
+-- this one's C functions are set back to those names, as such a database has
+-- them.  With the 1.2 library installed, their calls fail until the update.
+UPDATE pg_proc SET prosrc = substr(prosrc, length('affinity_') + 1)
+WHERE oid IN (SELECT objid FROM pg_depend d JOIN pg_extension e ON e.oid = d.refobjid
+              WHERE d.classid = 'pg_proc'::regclass AND d.deptype = 'e' AND e.extname = 'affinity')
+  AND prolang = (SELECT oid FROM pg_language WHERE lanname = 'c')
+  AND prosrc LIKE 'affinity\_%' AND prosrc NOT LIKE 'affinity\_fit\_%' AND prosrc <> 'affinity_runtime';
+SELECT count(*) AS functions_with_old_symbols, count(DISTINCT prosrc) AS old_symbols
+FROM pg_proc WHERE probin = '$libdir/affinity' AND prosrc NOT LIKE 'affinity\_%';
+-- the library's path is left out of the message, it differs between installations
+CREATE FUNCTION pg_temp.call_fails(q text) RETURNS text LANGUAGE plpgsql AS $$
+BEGIN
+	EXECUTE q;
+	RETURN 'no error';
+EXCEPTION WHEN undefined_function THEN
+	RETURN regexp_replace(SQLERRM, 'in file ".*"', 'in the installed library');
+END
+$$;
+SELECT pg_temp.call_fails('SELECT affinity.describe(model) FROM upg_model');
+SELECT pg_temp.call_fails('SELECT count(*) FROM upg_model, affinity.top_items(model, 1, 5)');
 ALTER EXTENSION affinity UPDATE TO '1.2';
+SELECT pg_temp.call_fails('SELECT affinity.describe(model) FROM upg_model');
+-- every C function of the extension is bound to its 1.2 symbol
+SELECT count(*) AS functions_with_old_symbols
+FROM pg_proc WHERE probin = '$libdir/affinity' AND prosrc NOT LIKE 'affinity\_%';
+-- and the key types of the registry's models were read from their values
+SELECT name, key_types FROM affinity.models ORDER BY name;
 SELECT extversion FROM pg_extension WHERE extname = 'affinity';
 SELECT affinity.describe(model)->>'checksum' = c AS same_value FROM upg_model, upg_checksum;
 -- owners are role oids now, with the name they had

@@ -233,7 +233,7 @@ COMMENT ON FUNCTION affinity.revert_model(text, integer) IS 'make an earlier ver
 
 CREATE FUNCTION affinity.forget_user(model affinity.model, user_id bigint)
 	RETURNS affinity.model
-	AS 'MODULE_PATHNAME', 'forget_user' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_forget_user' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
 COMMENT ON FUNCTION affinity.forget_user(affinity.model, bigint) IS 'a copy of the model without the user''s vector and training items (refit to remove their influence on items)';
 
 -- Text keys ---------------------------------------------------------------
@@ -272,51 +272,51 @@ CREATE FUNCTION affinity.top_items(model affinity.model, user_id text, k integer
 		exclude_seen boolean DEFAULT true, exclude text[] DEFAULT NULL,
 		candidates text[] DEFAULT NULL, fallback_popular boolean DEFAULT true)
 	RETURNS TABLE (item_id text, score real, rank integer)
-	AS 'MODULE_PATHNAME', 'top_items' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_top_items' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 10;
 CREATE FUNCTION affinity.top_items(model affinity.model, basket text[], k integer DEFAULT 10,
 		weights real[] DEFAULT NULL, exclude_seen boolean DEFAULT true,
 		exclude text[] DEFAULT NULL, candidates text[] DEFAULT NULL)
 	RETURNS TABLE (item_id text, score real, rank integer)
-	AS 'MODULE_PATHNAME', 'top_items_basket' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_top_items_basket' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 10;
 -- no default for users: the list's type picks this overload (NULL::text[] = all users)
 CREATE FUNCTION affinity.top_items_for_all(model affinity.model, k integer,
 		exclude_seen boolean, users text[])
 	RETURNS TABLE (user_id text, item_id text, score real, rank integer)
-	AS 'MODULE_PATHNAME', 'top_items_for_all' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_top_items_for_all' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 100000 ROWS 100000;
 CREATE FUNCTION affinity.items_like(model affinity.model, item_id text, k integer DEFAULT 10,
 		candidates text[] DEFAULT NULL)
 	RETURNS TABLE (item_id text, similarity real, rank integer)
-	AS 'MODULE_PATHNAME', 'items_like' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_items_like' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 10;
 CREATE FUNCTION affinity.users_like(model affinity.model, user_id text, k integer DEFAULT 10)
 	RETURNS TABLE (user_id text, similarity real, rank integer)
-	AS 'MODULE_PATHNAME', 'users_like' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_users_like' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 10;
 CREATE FUNCTION affinity.score(model affinity.model, user_id text, item_id text)
 	RETURNS real
-	AS 'MODULE_PATHNAME', 'score' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_score' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
 CREATE FUNCTION affinity.reasons(model affinity.model, user_id text, item_id text, k integer DEFAULT 5)
 	RETURNS TABLE (past_item_id text, contribution real, rank integer)
-	AS 'MODULE_PATHNAME', 'reasons' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_reasons' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 5;
 CREATE FUNCTION affinity.user_vector(model affinity.model, user_id text)
 	RETURNS real[]
-	AS 'MODULE_PATHNAME', 'user_vector' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_user_vector' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
 CREATE FUNCTION affinity.item_vector(model affinity.model, item_id text)
 	RETURNS real[]
-	AS 'MODULE_PATHNAME', 'item_vector' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_item_vector' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
 -- the list's type picks these overloads (NULL::text[] = all)
 CREATE FUNCTION affinity.user_vectors(model affinity.model, users text[])
 	RETURNS TABLE (user_id text, vector real[])
-	AS 'MODULE_PATHNAME', 'user_vectors' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_user_vectors' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 10000 ROWS 10000;
 CREATE FUNCTION affinity.item_vectors(model affinity.model, items text[])
 	RETURNS TABLE (item_id text, vector real[])
-	AS 'MODULE_PATHNAME', 'item_vectors' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_item_vectors' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 10000 ROWS 1000;
 CREATE FUNCTION affinity.forget_user(model affinity.model, user_id text)
 	RETURNS affinity.model
-	AS 'MODULE_PATHNAME', 'forget_user' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_forget_user' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;

@@ -12,13 +12,13 @@ GRANT USAGE ON SCHEMA affinity TO PUBLIC;
 CREATE TYPE affinity.model;
 
 CREATE FUNCTION affinity.model_in(cstring) RETURNS affinity.model
-	AS 'MODULE_PATHNAME', 'model_in' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_model_in' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
 CREATE FUNCTION affinity.model_out(affinity.model) RETURNS cstring
-	AS 'MODULE_PATHNAME', 'model_out' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_model_out' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
 CREATE FUNCTION affinity.model_recv(internal) RETURNS affinity.model
-	AS 'MODULE_PATHNAME', 'model_recv' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_model_recv' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
 CREATE FUNCTION affinity.model_send(affinity.model) RETURNS bytea
-	AS 'MODULE_PATHNAME', 'model_send' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_model_send' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
 
 CREATE TYPE affinity.model (
 	INPUT = affinity.model_in,
@@ -79,7 +79,7 @@ CREATE FUNCTION affinity.top_items(model affinity.model, user_id bigint, k integ
 		exclude_seen boolean DEFAULT true, exclude bigint[] DEFAULT NULL,
 		candidates bigint[] DEFAULT NULL, fallback_popular boolean DEFAULT true)
 	RETURNS TABLE (item_id bigint, score real, rank integer)
-	AS 'MODULE_PATHNAME', 'top_items' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_top_items' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 10;
 COMMENT ON FUNCTION affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean) IS 'the k best items for a known user';
 
@@ -87,76 +87,76 @@ CREATE FUNCTION affinity.top_items(model affinity.model, basket bigint[], k inte
 		weights real[] DEFAULT NULL, exclude_seen boolean DEFAULT true,
 		exclude bigint[] DEFAULT NULL, candidates bigint[] DEFAULT NULL)
 	RETURNS TABLE (item_id bigint, score real, rank integer)
-	AS 'MODULE_PATHNAME', 'top_items_basket' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_top_items_basket' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 10;
 COMMENT ON FUNCTION affinity.top_items(affinity.model, bigint[], integer, real[], boolean, bigint[], bigint[]) IS 'the k best items for a basket of items (a user the model has not seen)';
 
 CREATE FUNCTION affinity.top_items_for_all(model affinity.model, k integer DEFAULT 10,
 		exclude_seen boolean DEFAULT true, users bigint[] DEFAULT NULL)
 	RETURNS TABLE (user_id bigint, item_id bigint, score real, rank integer)
-	AS 'MODULE_PATHNAME', 'top_items_for_all' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_top_items_for_all' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 100000 ROWS 100000;
 COMMENT ON FUNCTION affinity.top_items_for_all(affinity.model, integer, boolean, bigint[]) IS 'the k best items for every user of the model (or the given users), in blocks';
 
 CREATE FUNCTION affinity.users_like(model affinity.model, user_id bigint, k integer DEFAULT 10)
 	RETURNS TABLE (user_id bigint, similarity real, rank integer)
-	AS 'MODULE_PATHNAME', 'users_like' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_users_like' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 10;
 COMMENT ON FUNCTION affinity.users_like(affinity.model, bigint, integer) IS 'the k users nearest to a user by cosine of their factors';
 
 CREATE FUNCTION affinity.reasons(model affinity.model, user_id bigint, item_id bigint, k integer DEFAULT 5)
 	RETURNS TABLE (past_item_id bigint, contribution real, rank integer)
-	AS 'MODULE_PATHNAME', 'reasons' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_reasons' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 5;
 COMMENT ON FUNCTION affinity.reasons(affinity.model, bigint, bigint, integer) IS 'which training items of the user push this item up, and by how much';
 
 CREATE FUNCTION affinity.items_like(model affinity.model, item_id bigint, k integer DEFAULT 10,
 		candidates bigint[] DEFAULT NULL)
 	RETURNS TABLE (item_id bigint, similarity real, rank integer)
-	AS 'MODULE_PATHNAME', 'items_like' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_items_like' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 10;
 COMMENT ON FUNCTION affinity.items_like(affinity.model, bigint, integer, bigint[]) IS 'the k items nearest to an item by cosine of their factors';
 
 CREATE FUNCTION affinity.score(model affinity.model, user_id bigint, item_id bigint)
 	RETURNS real
-	AS 'MODULE_PATHNAME', 'score' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_score' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
 COMMENT ON FUNCTION affinity.score(affinity.model, bigint, bigint) IS 'the model''s score for one user and item, NULL when either is unknown';
 
 CREATE FUNCTION affinity.user_vector(model affinity.model, user_id bigint)
 	RETURNS real[]
-	AS 'MODULE_PATHNAME', 'user_vector' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_user_vector' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
 CREATE FUNCTION affinity.item_vector(model affinity.model, item_id bigint)
 	RETURNS real[]
-	AS 'MODULE_PATHNAME', 'item_vector' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_item_vector' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
 CREATE FUNCTION affinity.user_vectors(model affinity.model)
 	RETURNS TABLE (user_id bigint, vector real[])
-	AS 'MODULE_PATHNAME', 'user_vectors' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_user_vectors' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE
 	COST 10000 ROWS 10000;
 CREATE FUNCTION affinity.item_vectors(model affinity.model)
 	RETURNS TABLE (item_id bigint, vector real[])
-	AS 'MODULE_PATHNAME', 'item_vectors' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE
+	AS 'MODULE_PATHNAME', 'affinity_item_vectors' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE
 	COST 10000 ROWS 1000;
 
 -- Evaluation -------------------------------------------------------------
 
 CREATE FUNCTION affinity.ranking_metrics_transfn(internal, affinity.model, bigint, bigint, integer)
 	RETURNS internal
-	AS 'MODULE_PATHNAME', 'ranking_metrics_transfn' LANGUAGE C PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_ranking_metrics_transfn' LANGUAGE C PARALLEL SAFE;
 CREATE FUNCTION affinity.ranking_metrics_transfn(internal, affinity.model, bigint, bigint)
 	RETURNS internal
-	AS 'MODULE_PATHNAME', 'ranking_metrics_transfn' LANGUAGE C PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_ranking_metrics_transfn' LANGUAGE C PARALLEL SAFE;
 CREATE FUNCTION affinity.ranking_metrics_combinefn(internal, internal)
 	RETURNS internal
-	AS 'MODULE_PATHNAME', 'ranking_metrics_combinefn' LANGUAGE C PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_ranking_metrics_combinefn' LANGUAGE C PARALLEL SAFE;
 CREATE FUNCTION affinity.ranking_metrics_serialfn(internal)
 	RETURNS bytea
-	AS 'MODULE_PATHNAME', 'ranking_metrics_serialfn' LANGUAGE C STRICT PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_ranking_metrics_serialfn' LANGUAGE C STRICT PARALLEL SAFE;
 CREATE FUNCTION affinity.ranking_metrics_deserialfn(bytea, internal)
 	RETURNS internal
-	AS 'MODULE_PATHNAME', 'ranking_metrics_deserialfn' LANGUAGE C STRICT PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_ranking_metrics_deserialfn' LANGUAGE C STRICT PARALLEL SAFE;
 CREATE FUNCTION affinity.ranking_metrics_finalfn(internal)
 	RETURNS jsonb
-	AS 'MODULE_PATHNAME', 'ranking_metrics_finalfn' LANGUAGE C PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_ranking_metrics_finalfn' LANGUAGE C PARALLEL SAFE;
 
 CREATE AGGREGATE affinity.ranking_metrics(model affinity.model, user_id bigint, item_id bigint, k integer) (
 	SFUNC = affinity.ranking_metrics_transfn,
@@ -181,7 +181,7 @@ COMMENT ON AGGREGATE affinity.ranking_metrics(affinity.model, bigint, bigint, in
 
 CREATE FUNCTION affinity.describe(model affinity.model)
 	RETURNS jsonb
-	AS 'MODULE_PATHNAME', 'describe' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_describe' LANGUAGE C IMMUTABLE STRICT PARALLEL SAFE;
 COMMENT ON FUNCTION affinity.describe(affinity.model) IS 'method, options as used, counts, loss per sweep, timings, size and checksum of a model';
 
 CREATE FUNCTION affinity.runtime()

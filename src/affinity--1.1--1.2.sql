@@ -4,12 +4,60 @@
 \echo Use "ALTER EXTENSION affinity UPDATE TO '1.2'" to load this file. \quit
 
 -- 1.2, in sections:
+--   C functions bound to the library's 1.2 symbol names (affinity_*); this
+--     section comes first because later ones call C functions.
 --   The registry as a security boundary: a model's owner is a role oid
 --     (with the name it had), a model's query is checked and run only in a
 --     session logged in as its owner, and only the owner changes a model.
 --   Aggregates that say what their final functions do (FINALFUNC_MODIFY).
 -- Each section stands alone; later changes of 1.2 go in sections of their
 -- own at the end.
+
+-- C functions: the library's symbol names ---------------------------------
+
+-- The 1.2 library exports only what PostgreSQL looks up, each SQL-callable
+-- function under the name affinity_<its 1.1 symbol> (1.1 named most of them
+-- without the prefix: top_items, score, describe, model_in, ...).  A
+-- database created by an older library names the old symbols in pg_proc,
+-- and until this update every call of such a function fails with "could not
+-- find function".  Each C function of the extension whose symbol lacks the
+-- prefix is defined again from its own catalog entry (pg_get_functiondef:
+-- argument names and defaults, result, volatility, strictness, PARALLEL,
+-- COST, ROWS, as this database has them) with only the symbol changed;
+-- CREATE OR REPLACE keeps its oid, so its comment, privileges, extension
+-- membership and the aggregates and types that use it stay as they are.
+-- A database whose functions name the new symbols already (created by this
+-- library) has nothing to change here.  A definition that does not end as
+-- pg_get_functiondef writes it is refused rather than guessed at.
+DO $$
+DECLARE
+	f record;
+	def text;
+	tail text;
+BEGIN
+	FOR f IN
+		SELECT p.oid, p.prosrc
+		FROM pg_catalog.pg_proc p
+		JOIN pg_catalog.pg_depend d
+			ON d.classid = 'pg_catalog.pg_proc'::pg_catalog.regclass AND d.objid = p.oid
+			   AND d.deptype = 'e'
+		JOIN pg_catalog.pg_extension e ON e.oid = d.refobjid AND e.extname = 'affinity'
+		WHERE p.prolang = (SELECT l.oid FROM pg_catalog.pg_language l WHERE l.lanname = 'c')
+		  AND p.probin = 'MODULE_PATHNAME'
+		  AND p.prosrc NOT LIKE 'affinity\_%'
+		ORDER BY p.oid
+	LOOP
+		def := pg_catalog.pg_get_functiondef(f.oid);
+		tail := 'AS ''MODULE_PATHNAME'', $function$' || f.prosrc || '$function$' || E'\n';
+		IF pg_catalog.right(def, pg_catalog.length(tail)) IS DISTINCT FROM tail THEN
+			RAISE EXCEPTION 'cannot rebind function % to its 1.2 symbol', f.oid::pg_catalog.regprocedure
+				USING DETAIL = pg_catalog.format('Its definition does not end with %L.', tail);
+		END IF;
+		EXECUTE pg_catalog.left(def, pg_catalog.length(def) - pg_catalog.length(tail))
+			|| 'AS ''MODULE_PATHNAME'', ' || pg_catalog.quote_literal('affinity_' || f.prosrc);
+	END LOOP;
+END
+$$;
 
 -- The registry: owner as a role oid ----------------------------------------
 
@@ -861,10 +909,10 @@ $$;
 -- The same transition function reads its key types from its arguments.
 CREATE FUNCTION affinity.ranking_metrics_transfn(internal, affinity.model, text, text, integer)
 	RETURNS internal
-	AS 'MODULE_PATHNAME', 'ranking_metrics_transfn' LANGUAGE C PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_ranking_metrics_transfn' LANGUAGE C PARALLEL SAFE;
 CREATE FUNCTION affinity.ranking_metrics_transfn(internal, affinity.model, text, text)
 	RETURNS internal
-	AS 'MODULE_PATHNAME', 'ranking_metrics_transfn' LANGUAGE C PARALLEL SAFE;
+	AS 'MODULE_PATHNAME', 'affinity_ranking_metrics_transfn' LANGUAGE C PARALLEL SAFE;
 CREATE AGGREGATE affinity.ranking_metrics(model affinity.model, user_id text, item_id text, k integer) (
 	SFUNC = affinity.ranking_metrics_transfn,
 	STYPE = internal,

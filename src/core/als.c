@@ -35,7 +35,11 @@
  * runtime), and the per-row entry points are compiled three times
  * (AVX-512, AVX2, baseline) and picked at load time for the CPU at hand,
  * so speed does not hang on OpenBLAS's own kernel choice.  Results of the
- * versions agree to rounding (sums are reassociated).
+ * versions agree to rounding (sums are reassociated).  The cloned
+ * functions are static, behind plain entry points: GCC gives the
+ * dispatching symbol of an extern cloned function default visibility
+ * whatever -fvisibility says, and the library exports only what PostgreSQL
+ * looks up.
  */
 #if defined(__x86_64__) && defined(__GNUC__) && !defined(__clang__) && !defined(AFF_NO_CLONES)
 #define AFF_KERNEL __attribute__((target_clones("avx512f", "avx2", "default")))
@@ -230,10 +234,10 @@ solve_cholesky(const float *F, const double *G, int f, double lambda,
  * Solve the row's system A z = rhs for another right-hand side (used to
  * explain scores: z = A^-1 y_i).  scratch as for aff_solve_row.
  */
-AFF_KERNEL int
-aff_solve_system(const float *F, const double *gram, int f, double lambda,
-				 const int32_t *idx, const float *conf, int64_t len,
-				 const float *rhs, float *z, double *scratch)
+AFF_KERNEL static int
+solve_system_kernel(const float *F, const double *gram, int f, double lambda,
+					const int32_t *idx, const float *conf, int64_t len,
+					const float *rhs, float *z, double *scratch)
 {
 	double	   *A = scratch;
 	double	   *b = scratch + (size_t) f * f;
@@ -249,6 +253,15 @@ aff_solve_system(const float *F, const double *gram, int f, double lambda,
 	for (k = 0; k < f; k++)
 		z[k] = (float) x[k];
 	return 1;
+}
+
+/* The entry point of solve_system_kernel. */
+int
+aff_solve_system(const float *F, const double *gram, int f, double lambda,
+				 const int32_t *idx, const float *conf, int64_t len,
+				 const float *rhs, float *z, double *scratch)
+{
+	return solve_system_kernel(F, gram, f, lambda, idx, conf, len, rhs, z, scratch);
 }
 
 /* out = A v for the row's system A = G + lambda I + sum (c-1) y y^T */
@@ -333,10 +346,10 @@ solve_cg(const float *F, const double *G, int f, double lambda,
  * and receives the solution.  scratch holds aff_solve_scratch_len(f)
  * doubles.  Returns 0 on a numerical failure (Cholesky only).
  */
-AFF_KERNEL int
-aff_solve_row(const float *F, const double *gram, int f, double lambda,
-			  const int32_t *idx, const float *conf, int64_t len, int solver,
-			  int solver_steps, float *x, double *scratch)
+AFF_KERNEL static int
+solve_row_kernel(const float *F, const double *gram, int f, double lambda,
+				 const int32_t *idx, const float *conf, int64_t len, int solver,
+				 int solver_steps, float *x, double *scratch)
 {
 	double	   *xd = scratch + (size_t) f * f + 4 * (size_t) f;
 	int			k;
@@ -352,6 +365,16 @@ aff_solve_row(const float *F, const double *gram, int f, double lambda,
 		for (k = 0; k < f; k++)
 			x[k] = (float) xd[k];
 	return ok;
+}
+
+/* The entry point of solve_row_kernel. */
+int
+aff_solve_row(const float *F, const double *gram, int f, double lambda,
+			  const int32_t *idx, const float *conf, int64_t len, int solver,
+			  int solver_steps, float *x, double *scratch)
+{
+	return solve_row_kernel(F, gram, f, lambda, idx, conf, len, solver,
+							solver_steps, x, scratch);
 }
 
 /*

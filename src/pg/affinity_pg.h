@@ -10,8 +10,46 @@
 #ifndef AFFINITY_PG_H
 #define AFFINITY_PG_H
 
+/*
+ * Exported names.  The library is built with -fvisibility=hidden, and only
+ * what PostgreSQL looks up by name gets default visibility: Pg_magic_func,
+ * _PG_init, and each SQL-callable function with its pg_finfo_ record.  Every
+ * other exported name would join the server's namespace, where it could
+ * take the place of (or be taken by) a symbol of the same name.
+ *
+ * PostgreSQL 15 defines PGDLLEXPORT empty on Linux unless it is defined
+ * already (c.h), so it is defined here, before postgres.h; this header must
+ * therefore come before any PostgreSQL header.
+ */
+#ifdef POSTGRES_H
+#error "affinity_pg.h must be included before postgres.h"
+#endif
+#define PGDLLEXPORT __attribute__((visibility("default")))
+
 #include "postgres.h"
 #include "fmgr.h"
+
+/*
+ * PostgreSQL 15's PG_FUNCTION_INFO_V1 marks only the pg_finfo_ record
+ * PGDLLEXPORT, not the function itself, which -fvisibility=hidden would then
+ * hide from the server's lookup; PostgreSQL 16 declares both, as done here.
+ * SQL-callable functions are named affinity_*, like their SQL scripts'
+ * symbols.
+ */
+#undef PG_FUNCTION_INFO_V1
+#define PG_FUNCTION_INFO_V1(funcname) \
+extern PGDLLEXPORT Datum funcname(PG_FUNCTION_ARGS); \
+extern PGDLLEXPORT const Pg_finfo_record * CppConcat(pg_finfo_,funcname)(void); \
+const Pg_finfo_record * \
+CppConcat(pg_finfo_,funcname) (void) \
+{ \
+	static const Pg_finfo_record my_finfo = { 1 }; \
+	return &my_finfo; \
+} \
+extern int no_such_variable
+
+/* The module's initialisation, which PostgreSQL calls on loading it (guc.c) */
+extern PGDLLEXPORT void _PG_init(void);
 #include "portability/instr_time.h"
 #include "lib/stringinfo.h"
 #include "utils/jsonb.h"

@@ -43,14 +43,14 @@ emit_chunk(FunctionCallInfo fcinfo, const AffModelView *v, const int32 *users,
 		}
 }
 
-PG_FUNCTION_INFO_V1(top_items_for_all);
+PG_FUNCTION_INFO_V1(affinity_top_items_for_all);
 
 /*
  * top_items_for_all(model, k, exclude_seen, users) ->
  *		(user_id, item_id, score, rank)
  */
 Datum
-top_items_for_all(PG_FUNCTION_ARGS)
+affinity_top_items_for_all(PG_FUNCTION_ARGS)
 {
 	AffModelView v;
 	AffServe	s;

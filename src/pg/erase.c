@@ -84,14 +84,14 @@ forget_section(const AffModelView *v, int k, int64 u, uint64 *count)
 	return NULL;
 }
 
-PG_FUNCTION_INFO_V1(forget_user);
+PG_FUNCTION_INFO_V1(affinity_forget_user);
 
 /*
  * forget_user(model, user_id) -> model: every section through the section
  * table's forget rule, the header's counts reduced.
  */
 Datum
-forget_user(PG_FUNCTION_ARGS)
+affinity_forget_user(PG_FUNCTION_ARGS)
 {
 	AffModelView v;
 	AffModelParts parts;

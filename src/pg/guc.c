@@ -18,8 +18,6 @@
 
 PG_MODULE_MAGIC;
 
-void		_PG_init(void);
-
 int			affinity_threads = 0;
 int			affinity_max_threads = 0;
 int			affinity_factors = 64;

@@ -61,30 +61,30 @@ all_vectors(FunctionCallInfo fcinfo, bool users)
 	return (Datum) 0;
 }
 
-PG_FUNCTION_INFO_V1(user_vector);
+PG_FUNCTION_INFO_V1(affinity_user_vector);
 Datum
-user_vector(PG_FUNCTION_ARGS)
+affinity_user_vector(PG_FUNCTION_ARGS)
 {
 	return one_vector(fcinfo, true);
 }
 
-PG_FUNCTION_INFO_V1(item_vector);
+PG_FUNCTION_INFO_V1(affinity_item_vector);
 Datum
-item_vector(PG_FUNCTION_ARGS)
+affinity_item_vector(PG_FUNCTION_ARGS)
 {
 	return one_vector(fcinfo, false);
 }
 
-PG_FUNCTION_INFO_V1(user_vectors);
+PG_FUNCTION_INFO_V1(affinity_user_vectors);
 Datum
-user_vectors(PG_FUNCTION_ARGS)
+affinity_user_vectors(PG_FUNCTION_ARGS)
 {
 	return all_vectors(fcinfo, true);
 }
 
-PG_FUNCTION_INFO_V1(item_vectors);
+PG_FUNCTION_INFO_V1(affinity_item_vectors);
 Datum
-item_vectors(PG_FUNCTION_ARGS)
+affinity_item_vectors(PG_FUNCTION_ARGS)
 {
 	return all_vectors(fcinfo, false);
 }
@@ -186,11 +186,11 @@ read_summary(FunctionCallInfo fcinfo, AffModelHeader *h, double **loss,
 	}
 }
 
-PG_FUNCTION_INFO_V1(describe);
+PG_FUNCTION_INFO_V1(affinity_describe);
 
 /* describe(model) -> jsonb, from the header and per-sweep arrays only */
 Datum
-describe(PG_FUNCTION_ARGS)
+affinity_describe(PG_FUNCTION_ARGS)
 {
 	AffModelHeader hd;
 	const AffModelHeader *h = &hd;

@@ -275,14 +275,14 @@ state_set_model(MetricsState *st, struct varlena *raw, int32 k)
 	check_same_model(st, raw);
 }
 
-PG_FUNCTION_INFO_V1(ranking_metrics_transfn);
+PG_FUNCTION_INFO_V1(affinity_ranking_metrics_transfn);
 
 /*
  * (state, model, user_id, item_id [, k = 10]) -> state; NULL rows are
  * skipped.  user_id and item_id are bigint or text, as the overload says.
  */
 Datum
-ranking_metrics_transfn(PG_FUNCTION_ARGS)
+affinity_ranking_metrics_transfn(PG_FUNCTION_ARGS)
 {
 	MemoryContext aggcxt;
 	MetricsState *st;
@@ -313,10 +313,10 @@ ranking_metrics_transfn(PG_FUNCTION_ARGS)
 	PG_RETURN_POINTER(st);
 }
 
-PG_FUNCTION_INFO_V1(ranking_metrics_combinefn);
+PG_FUNCTION_INFO_V1(affinity_ranking_metrics_combinefn);
 
 Datum
-ranking_metrics_combinefn(PG_FUNCTION_ARGS)
+affinity_ranking_metrics_combinefn(PG_FUNCTION_ARGS)
 {
 	MemoryContext aggcxt;
 	MetricsState *a;
@@ -356,10 +356,10 @@ ranking_metrics_combinefn(PG_FUNCTION_ARGS)
 	PG_RETURN_POINTER(a);
 }
 
-PG_FUNCTION_INFO_V1(ranking_metrics_serialfn);
+PG_FUNCTION_INFO_V1(affinity_ranking_metrics_serialfn);
 
 Datum
-ranking_metrics_serialfn(PG_FUNCTION_ARGS)
+affinity_ranking_metrics_serialfn(PG_FUNCTION_ARGS)
 {
 	MetricsState *st = (MetricsState *) PG_GETARG_POINTER(0);
 	StringInfoData buf;
@@ -385,10 +385,10 @@ ranking_metrics_serialfn(PG_FUNCTION_ARGS)
 	PG_RETURN_BYTEA_P(pq_endtypsend(&buf));
 }
 
-PG_FUNCTION_INFO_V1(ranking_metrics_deserialfn);
+PG_FUNCTION_INFO_V1(affinity_ranking_metrics_deserialfn);
 
 Datum
-ranking_metrics_deserialfn(PG_FUNCTION_ARGS)
+affinity_ranking_metrics_deserialfn(PG_FUNCTION_ARGS)
 {
 	bytea	   *b = PG_GETARG_BYTEA_PP(0);
 	MemoryContext aggcxt;
@@ -684,10 +684,10 @@ evaluate(const AffModelView *v, HeldOut *pairs, int64 n, int64 k, Sums *s)
 	}
 }
 
-PG_FUNCTION_INFO_V1(ranking_metrics_finalfn);
+PG_FUNCTION_INFO_V1(affinity_ranking_metrics_finalfn);
 
 Datum
-ranking_metrics_finalfn(PG_FUNCTION_ARGS)
+affinity_ranking_metrics_finalfn(PG_FUNCTION_ARGS)
 {
 	MetricsState *st;
 	AffModelView v;

@@ -278,14 +278,14 @@ model_accept(bytea *v)
 				 errdetail("The value's content does not match the SHA-256 digest in its header; it was damaged or altered.")));
 }
 
-PG_FUNCTION_INFO_V1(model_in);
+PG_FUNCTION_INFO_V1(affinity_model_in);
 
 /*
  * Text input: base64, white space ignored, decoded straight into the new
  * value (no copy of the text is made).
  */
 Datum
-model_in(PG_FUNCTION_ARGS)
+affinity_model_in(PG_FUNCTION_ARGS)
 {
 	char	   *in = PG_GETARG_CSTRING(0);
 	size_t		tlen = strlen(in);
@@ -311,7 +311,7 @@ model_in(PG_FUNCTION_ARGS)
 	PG_RETURN_POINTER(v);
 }
 
-PG_FUNCTION_INFO_V1(model_out);
+PG_FUNCTION_INFO_V1(affinity_model_out);
 
 /*
  * Text output: base64 without line breaks, sized over size_t (the text of
@@ -320,7 +320,7 @@ PG_FUNCTION_INFO_V1(model_out);
  * way out.
  */
 Datum
-model_out(PG_FUNCTION_ARGS)
+affinity_model_out(PG_FUNCTION_ARGS)
 {
 	bytea	   *v = PG_GETARG_BYTEA_PP(0);
 	size_t		len = VARSIZE_ANY_EXHDR(v);
@@ -340,11 +340,11 @@ model_out(PG_FUNCTION_ARGS)
 	PG_RETURN_CSTRING(out);
 }
 
-PG_FUNCTION_INFO_V1(model_recv);
+PG_FUNCTION_INFO_V1(affinity_model_recv);
 
 /* Binary receive: the bytes after the length word, checked as text input is. */
 Datum
-model_recv(PG_FUNCTION_ARGS)
+affinity_model_recv(PG_FUNCTION_ARGS)
 {
 	StringInfo	buf = (StringInfo) PG_GETARG_POINTER(0);
 	int			len = buf->len - buf->cursor;
@@ -361,10 +361,10 @@ model_recv(PG_FUNCTION_ARGS)
 	PG_RETURN_POINTER(v);
 }
 
-PG_FUNCTION_INFO_V1(model_send);
+PG_FUNCTION_INFO_V1(affinity_model_send);
 
 Datum
-model_send(PG_FUNCTION_ARGS)
+affinity_model_send(PG_FUNCTION_ARGS)
 {
 	bytea	   *v = PG_GETARG_BYTEA_PP(0);
 	StringInfoData buf;

@@ -80,14 +80,14 @@ alloc_scores(const AffModelView *v)
 	return palloc_extended(sizeof(float) * v->h->n_items, MCXT_ALLOC_HUGE);
 }
 
-PG_FUNCTION_INFO_V1(top_items);
+PG_FUNCTION_INFO_V1(affinity_top_items);
 
 /*
  * top_items(model, user_id, k, exclude_seen, exclude, candidates,
  *			 fallback_popular) -> (item_id, score, rank)
  */
 Datum
-top_items(PG_FUNCTION_ARGS)
+affinity_top_items(PG_FUNCTION_ARGS)
 {
 	CachedModel *e;
 	const AffModelView *v;
@@ -242,7 +242,7 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 	return n;
 }
 
-PG_FUNCTION_INFO_V1(top_items_basket);
+PG_FUNCTION_INFO_V1(affinity_top_items_basket);
 
 /*
  * top_items(model, basket bigint[], k, weights, exclude_seen, exclude,
@@ -251,7 +251,7 @@ PG_FUNCTION_INFO_V1(top_items_basket);
  * the most popular items.
  */
 Datum
-top_items_basket(PG_FUNCTION_ARGS)
+affinity_top_items_basket(PG_FUNCTION_ARGS)
 {
 	CachedModel *e;
 	const AffModelView *v;
@@ -307,7 +307,7 @@ top_items_basket(PG_FUNCTION_ARGS)
 	return (Datum) 0;
 }
 
-PG_FUNCTION_INFO_V1(items_like);
+PG_FUNCTION_INFO_V1(affinity_items_like);
 
 /*
  * items_like(model, item_id, k, candidates) -> (item_id, similarity, rank):
@@ -315,7 +315,7 @@ PG_FUNCTION_INFO_V1(items_like);
  * the learned weights for ease and item_knn).
  */
 Datum
-items_like(PG_FUNCTION_ARGS)
+affinity_items_like(PG_FUNCTION_ARGS)
 {
 	CachedModel *e;
 	const AffModelView *v;
@@ -358,11 +358,11 @@ items_like(PG_FUNCTION_ARGS)
 	return (Datum) 0;
 }
 
-PG_FUNCTION_INFO_V1(users_like);
+PG_FUNCTION_INFO_V1(affinity_users_like);
 
 /* users_like(model, user_id, k) -> (user_id, similarity, rank) */
 Datum
-users_like(PG_FUNCTION_ARGS)
+affinity_users_like(PG_FUNCTION_ARGS)
 {
 	CachedModel *e;
 	const AffModelView *v;
@@ -402,11 +402,11 @@ users_like(PG_FUNCTION_ARGS)
 	return (Datum) 0;
 }
 
-PG_FUNCTION_INFO_V1(score);
+PG_FUNCTION_INFO_V1(affinity_score);
 
 /* score(model, user_id, item_id) -> real, NULL when either is unknown */
 Datum
-score(PG_FUNCTION_ARGS)
+affinity_score(PG_FUNCTION_ARGS)
 {
 	AffModelView v;
 	AffServe	s;
@@ -423,7 +423,7 @@ score(PG_FUNCTION_ARGS)
 	PG_RETURN_FLOAT4(model_method(&v)->pair_score(&s, u, i));
 }
 
-PG_FUNCTION_INFO_V1(reasons);
+PG_FUNCTION_INFO_V1(affinity_reasons);
 
 /*
  * reasons(model, user_id, item_id, k) -> (past_item_id, contribution,
@@ -431,7 +431,7 @@ PG_FUNCTION_INFO_V1(reasons);
  * much.
  */
 Datum
-reasons(PG_FUNCTION_ARGS)
+affinity_reasons(PG_FUNCTION_ARGS)
 {
 	CachedModel *e;
 	const AffModelView *v;
