@@ -307,21 +307,55 @@ aff_sparse_matrix_bytes(const AffMatrix *m)
 		2.0 * (m->n_users + m->n_items + 1) * sizeof(int64_t);
 }
 
-/* Refuse a fit whose work memory would pass the context's limit. */
+/*
+ * The one memory guard of a fit: refuse it when need->bytes passes limit
+ * (bytes; 0 or less: no limit), limit_name being what sets the limit.  The
+ * aggregate calls it as rows arrive and before the method runs, the methods
+ * (through aff_fit_check_memory) before their own work memory; all refusals
+ * have this message, with the step's figures in the detail.
+ */
+AffStatus
+aff_fit_memory_guard(double limit, const char *limit_name,
+					 const AffFitMemory *need, AffError *err)
+{
+	const double mb = 1024.0 * 1024.0;
+	const char *name = limit_name ? limit_name : "the memory limit";
+	char		texts[160];
+
+	if (limit <= 0 || need->bytes <= limit)
+		return AFF_OK;
+	texts[0] = '\0';
+	if (need->text_keys > 0)
+		snprintf(texts, sizeof(texts),
+				 ", and %lld distinct text keys of %.1f MB (%.1f MB with their dictionaries)",
+				 (long long) need->text_keys, need->text_bytes / mb,
+				 need->text_held_bytes / mb);
+	aff_fail(err, AFF_ERR_LIMIT, "affinity.fit would need about %.0f MB, over %s",
+			 need->bytes / mb, name);
+	aff_detail(err, "%s: %.0f interactions of %s%.0f users and %.0f items%s; %s is %.0f MB.",
+			   need->step, need->interactions, need->at_most ? "at most " : "",
+			   need->users, need->items, texts, name, limit / mb);
+	return aff_hint(err, "Raise %s, %s.", name,
+					need->remedy ? need->remedy : "or fit on fewer rows");
+}
+
+/* A method's guard of its work memory need (bytes) over m, by the context's limit. */
 AffStatus
 aff_fit_check_memory(const AffFitContext *cx, const char *method, double need,
 					 const AffMatrix *m, AffError *err)
 {
-	const char *name = cx->memory_limit_name ? cx->memory_limit_name : "the memory limit";
+	AffFitMemory fm;
+	char		step[64];
 
-	if (cx->memory_limit <= 0 || need <= cx->memory_limit)
-		return AFF_OK;
-	aff_fail(err, AFF_ERR_LIMIT, "affinity.fit would need about %.0f MB, over %s",
-			 need / (1024.0 * 1024.0), name);
-	aff_detail(err, "Method \"%s\" over %lld items and %lld interactions; %s is %.0f MB.",
-			   method, (long long) m->n_items, (long long) m->nnz, name,
-			   cx->memory_limit / (1024.0 * 1024.0));
-	return aff_hint(err, "Raise %s, or drop rare items with min_item_interactions.", name);
+	memset(&fm, 0, sizeof(fm));
+	snprintf(step, sizeof(step), "Method \"%s\"", method);
+	fm.bytes = need;
+	fm.step = step;
+	fm.interactions = (double) m->nnz;
+	fm.users = (double) m->n_users;
+	fm.items = (double) m->n_items;
+	fm.remedy = "or drop rare items with min_item_interactions";
+	return aff_fit_memory_guard(cx->memory_limit, cx->memory_limit_name, &fm, err);
 }
 
 /* Largest confidence a fit accepts: beyond it the float solves lose all precision. */

@@ -213,6 +213,27 @@ extern AffStatus aff_fit_run(const AffMatrix *m, const AffOptions *o,
 							 AffError *err);
 extern int	aff_fit_progress(const AffFitContext *cx, const char *title,
 							 const char *notice);
+
+/*
+ * What a fit would hold at its peak, for aff_fit_memory_guard: the estimate
+ * and the figures its message names.
+ */
+typedef struct AffFitMemory
+{
+	double		bytes;			/* the estimate */
+	const char *step;			/* what would need it ("Method \"ease\"") */
+	double		interactions;
+	double		users;
+	double		items;
+	bool		at_most;		/* users and items are upper bounds */
+	int64_t		text_keys;		/* distinct text keys held (0: bigint keys) */
+	double		text_bytes;		/* their texts */
+	double		text_held_bytes;	/* the texts with their dictionaries */
+	const char *remedy;			/* the hint after "Raise <limit>, " */
+} AffFitMemory;
+
+extern AffStatus aff_fit_memory_guard(double limit, const char *limit_name,
+									  const AffFitMemory *need, AffError *err);
 extern AffStatus aff_fit_check_memory(const AffFitContext *cx, const char *method,
 									  double need, const AffMatrix *m,
 									  AffError *err);

@@ -664,34 +664,35 @@ estimate_fit_bytes(const FitState *st, double n_rows, double users, double items
 		+ text_bytes_needed(st);
 }
 
+/*
+ * Refuse the fit when the estimate passes affinity.max_fit_memory, through
+ * the engine's one memory guard (the methods' own checks use it too).
+ */
 static void
 check_memory(const FitState *st, double n_rows, double users, double items,
 			 bool with_factors)
 {
-	double		need = estimate_fit_bytes(st, n_rows, users, items, with_factors);
-	double		limit = (double) affinity_max_fit_memory_mb * 1024.0 * 1024.0;
+	AffFitMemory need;
+	AffError	err;
 
-	if (need <= limit)
-		return;
+	memset(&need, 0, sizeof(need));
+	need.bytes = estimate_fit_bytes(st, n_rows, users, items, with_factors);
+	need.step = with_factors ? "Fitting" : "Collecting the rows";
+	need.interactions = n_rows;
+	need.users = users;
+	need.items = items;
+	need.at_most = !with_factors;
+	need.remedy = "lower factors, or fit on fewer rows";
 	if (st->text_keys && st->user_texts != NULL)
-		ereport(ERROR,
-				(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
-				 errmsg("affinity.fit would need about %.0f MB, over affinity.max_fit_memory",
-						need / (1024.0 * 1024.0)),
-				 errdetail("The fit holds %.0f interactions of at most %.0f users and %.0f items, and " INT64_FORMAT " distinct text keys of %.1f MB (%.1f MB with their dictionaries); affinity.max_fit_memory is %d MB.",
-						   n_rows, users, items,
-						   text_dict_count(st->user_texts) + text_dict_count(st->item_texts),
-						   (double) (st->user_texts->bytes + st->item_texts->bytes) / (1024.0 * 1024.0),
-						   (double) st->text_memory / (1024.0 * 1024.0),
-						   affinity_max_fit_memory_mb),
-				 errhint("Raise affinity.max_fit_memory, map long text keys to shorter ones, or fit on fewer rows.")));
-	ereport(ERROR,
-			(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
-			 errmsg("affinity.fit would need about %.0f MB, over affinity.max_fit_memory",
-					need / (1024.0 * 1024.0)),
-			 errdetail("The fit holds %.0f interactions of at most %.0f users and %.0f items; affinity.max_fit_memory is %d MB.",
-					   n_rows, users, items, affinity_max_fit_memory_mb),
-			 errhint("Raise affinity.max_fit_memory, lower factors, or fit on fewer rows.")));
+	{
+		need.text_keys = text_dict_count(st->user_texts) + text_dict_count(st->item_texts);
+		need.text_bytes = (double) (st->user_texts->bytes + st->item_texts->bytes);
+		need.text_held_bytes = (double) st->text_memory;
+		need.remedy = "map long text keys to shorter ones, or fit on fewer rows";
+	}
+	if (aff_fit_memory_guard((double) affinity_max_fit_memory_mb * 1024.0 * 1024.0,
+							 "affinity.max_fit_memory", &need, &err) != AFF_OK)
+		raise_engine_error(&err);
 }
 
 /*

@@ -532,6 +532,42 @@ test_als_fit(void)
 	}
 }
 
+/* The fit's one memory guard: the limit's edge, no limit, and the figures it names. */
+static void
+test_memory_guard(void)
+{
+	const double mb = 1024.0 * 1024.0;
+	AffFitMemory need = {0};
+	AffError	err;
+	AffStatus	st;
+
+	need.bytes = 2 * mb;
+	need.step = "Collecting the rows";
+	need.interactions = 4855;
+	need.users = 4855;
+	need.items = 4855;
+	need.at_most = true;
+	check(aff_fit_memory_guard(2 * mb, "the limit", &need, &err) == AFF_OK,
+		  "memory guard: a need equal to the limit passes", 2, 2);
+	check(aff_fit_memory_guard(0, "the limit", &need, &err) == AFF_OK,
+		  "memory guard: a limit of 0 is no limit", 0, 0);
+	st = aff_fit_memory_guard(1 * mb, "the limit", &need, &err);
+	printf("     (%s / %s / %s)\n", err.msg, err.detail, err.hint);
+	check(st == AFF_ERR_LIMIT &&
+		  strcmp(err.msg, "affinity.fit would need about 2 MB, over the limit") == 0 &&
+		  strcmp(err.detail, "Collecting the rows: 4855 interactions of at most 4855 users and 4855 items; the limit is 1 MB.") == 0 &&
+		  strcmp(err.hint, "Raise the limit, or fit on fewer rows.") == 0,
+		  "memory guard: 2 MB over a 1 MB limit is refused with its figures", st, AFF_ERR_LIMIT);
+	need.text_keys = 200;
+	need.text_bytes = 200 * mb;
+	need.text_held_bytes = 210 * mb;
+	need.bytes = 420 * mb;
+	st = aff_fit_memory_guard(16 * mb, "the limit", &need, &err);
+	check(st == AFF_ERR_LIMIT &&
+		  strstr(err.detail, "and 200 distinct text keys of 200.0 MB (210.0 MB with their dictionaries)") != NULL,
+		  "memory guard: the detail names the text keys", st, AFF_ERR_LIMIT);
+}
+
 int
 main(void)
 {
@@ -540,6 +576,7 @@ main(void)
 	test_method(AFF_METHOD_EASE, 300, 80);
 	test_method(AFF_METHOD_ITEM_KNN, 300, 80);
 	test_als_fit();
+	test_memory_guard();
 	printf("%s: %d failure(s)\n", failures ? "FAILED" : "passed", failures);
 	return failures ? 1 : 0;
 }
