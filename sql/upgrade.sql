@@ -2,7 +2,8 @@
 -- Upgrades: a model stored under version 1.0 serves unchanged after
 -- ALTER EXTENSION affinity UPDATE to 1.1 and then to 1.2; the 1.1 registry's
 -- owners (role names) become role oids, and a model whose owner role no
--- longer exists cannot be refreshed.
+-- longer exists cannot be refreshed; C functions that name the older
+-- library's symbols fail until the update to 1.2 binds them to the new ones.
 --
 SET client_min_messages = warning;
 DROP EXTENSION affinity CASCADE;
