@@ -171,17 +171,32 @@ aff_sha256(const void *data, size_t len, uint8_t out[AFF_SHA256_BYTES])
 	aff_sha256_final(&s, out);
 }
 
+/* Ask poll (when there is one) whether to stop; the cancel error if so. */
+static AffStatus
+digest_poll(AffPollFn poll, void *poll_arg, AffError *err)
+{
+	if (poll != NULL && poll(poll_arg))
+		return aff_fail(err, AFF_ERR_CANCELLED, "hashing the model was cancelled");
+	return AFF_OK;
+}
+
 /*
  * The content digest: SHA-256 of bytes 4 .. len of the value with the
  * checksum and content_digest fields read as zeros (the checksum depends
- * on the digest, and the digest cannot cover itself).
+ * on the digest, and the digest cannot cover itself).  The content after
+ * the header goes in chunks of AFF_POLL_BYTES with a poll between them
+ * (poll may be NULL); SHA-256 is a stream, so the digest is the one-pass
+ * digest.
  */
-void
-aff_model_digest(const uint8_t *buf, uint64_t len, uint8_t out[AFF_SHA256_BYTES])
+AffStatus
+aff_model_digest_polled(const uint8_t *buf, uint64_t len, uint8_t out[AFF_SHA256_BYTES],
+						AffPollFn poll, void *poll_arg, AffError *err)
 {
 	const size_t cs = offsetof(AffModelHeader, checksum);
 	const size_t dg = offsetof(AffModelHeader, content_digest);
 	static const uint8_t zeros[AFF_SHA256_BYTES] = {0};
+	const uint8_t *p;
+	uint64_t	n;
 	AffSha256	s;
 
 	_Static_assert(offsetof(AffModelHeader, checksum) < offsetof(AffModelHeader, content_digest),
@@ -191,8 +206,28 @@ aff_model_digest(const uint8_t *buf, uint64_t len, uint8_t out[AFF_SHA256_BYTES]
 	aff_sha256_update(&s, zeros, 8);
 	aff_sha256_update(&s, buf + cs + 8, dg - cs - 8);
 	aff_sha256_update(&s, zeros, AFF_SHA256_BYTES);
-	aff_sha256_update(&s, buf + dg + AFF_SHA256_BYTES, len - dg - AFF_SHA256_BYTES);
+	p = buf + dg + AFF_SHA256_BYTES;
+	n = len - dg - AFF_SHA256_BYTES;
+	while (n > AFF_POLL_BYTES)
+	{
+		aff_sha256_update(&s, p, AFF_POLL_BYTES);
+		p += AFF_POLL_BYTES;
+		n -= AFF_POLL_BYTES;
+		if (digest_poll(poll, poll_arg, err) != AFF_OK)
+			return err->status;
+	}
+	aff_sha256_update(&s, p, n);
 	aff_sha256_final(&s, out);
+	return AFF_OK;
+}
+
+/* The content digest in one go. */
+void
+aff_model_digest(const uint8_t *buf, uint64_t len, uint8_t out[AFF_SHA256_BYTES])
+{
+	AffError	err;
+
+	(void) aff_model_digest_polled(buf, len, out, NULL, NULL, &err);
 }
 
 /* 1 when the value's content_digest is all zero. */
@@ -208,17 +243,34 @@ aff_model_digest_unset(const uint8_t *buf)
 	return 1;
 }
 
-/* Store the content digest and the checksum that covers it. */
-void
-aff_model_seal(uint8_t *buf, uint64_t len)
+/*
+ * Store the content digest and the checksum that covers it, polling
+ * between chunks of both (poll may be NULL).  On a cancel the value is
+ * left unsealed.
+ */
+AffStatus
+aff_model_seal_polled(uint8_t *buf, uint64_t len, AffPollFn poll, void *poll_arg,
+					  AffError *err)
 {
 	uint8_t		d[AFF_SHA256_BYTES];
 	uint64_t	c;
 
-	aff_model_digest(buf, len, d);
+	if (aff_model_digest_polled(buf, len, d, poll, poll_arg, err) != AFF_OK)
+		return err->status;
 	memcpy(buf + offsetof(AffModelHeader, content_digest), d, AFF_SHA256_BYTES);
-	c = aff_model_checksum(buf, len);
+	if (aff_model_checksum_polled(buf, len, poll, poll_arg, &c, err) != AFF_OK)
+		return err->status;
 	memcpy(buf + offsetof(AffModelHeader, checksum), &c, 8);
+	return AFF_OK;
+}
+
+/* Seal the value in one go. */
+void
+aff_model_seal(uint8_t *buf, uint64_t len)
+{
+	AffError	err;
+
+	(void) aff_model_seal_polled(buf, len, NULL, NULL, &err);
 }
 
 static const char b64_alphabet[] =
@@ -233,6 +285,33 @@ aff_b64_encoded_len(size_t n)
 	if (groups > SIZE_MAX / 4)
 		return 0;
 	return groups * 4;
+}
+
+/*
+ * Bytes of input the codec handles between two polls: a multiple of 3, so
+ * each chunk but the last encodes to whole groups without padding.
+ */
+#define B64_CHUNK	((size_t) (AFF_POLL_BYTES / 8) * 3)
+
+/*
+ * aff_b64_encode in chunks of B64_CHUNK bytes with a poll between them
+ * (poll may be NULL); the text is the one-pass text.
+ */
+AffStatus
+aff_b64_encode_polled(const uint8_t *in, size_t n, char *out, AffPollFn poll, void *poll_arg,
+					  AffError *err)
+{
+	while (n > B64_CHUNK)
+	{
+		aff_b64_encode(in, B64_CHUNK, out);
+		in += B64_CHUNK;
+		out += B64_CHUNK / 3 * 4;
+		n -= B64_CHUNK;
+		if (digest_poll(poll, poll_arg, err) != AFF_OK)
+			return err->status;
+	}
+	aff_b64_encode(in, n, out);
+	return AFF_OK;
 }
 
 /* RFC 4648, section 4, with '=' padding and no line breaks. */
@@ -293,18 +372,30 @@ b64_fill_table(void)
 }
 
 /*
- * Decode, skipping white space.  Padding ('=') may only close the last
+ * Decode, skipping white space, in one go.  Padding ('=') may only close the last
  * group of four, as one or two characters; nothing but white space may
  * follow it; the characters must form whole groups of four.
  */
 int64_t
 aff_b64_decode(const char *in, size_t n, uint8_t *out, size_t *bad_at)
 {
+	return aff_b64_decode_polled(in, n, out, bad_at, NULL, NULL);
+}
+
+/*
+ * aff_b64_decode with a poll every B64_CHUNK characters or so (poll may be
+ * NULL); AFF_B64_CANCELLED when it asks to stop.
+ */
+int64_t
+aff_b64_decode_polled(const char *in, size_t n, uint8_t *out, size_t *bad_at,
+					  AffPollFn poll, void *poll_arg)
+{
 	uint8_t    *o = out;
 	uint32_t	acc = 0;
 	int			held = 0;		/* sextets in acc */
 	int			pad = 0;
 	size_t		i;
+	size_t		next_poll = B64_CHUNK;
 
 	if (!b64_table_ready)
 		b64_fill_table();		/* idempotent: a race only fills it twice */
@@ -312,6 +403,13 @@ aff_b64_decode(const char *in, size_t n, uint8_t *out, size_t *bad_at)
 	{
 		unsigned char c = (unsigned char) in[i];
 		int			v;
+
+		if (i >= next_poll)
+		{
+			if (poll != NULL && poll(poll_arg))
+				return AFF_B64_CANCELLED;
+			next_poll = i + B64_CHUNK;
+		}
 
 		/* fast path: four alphabet characters at a group boundary */
 		if (held == 0 && pad == 0 && i + 4 <= n)

@@ -35,6 +35,16 @@ extern void aff_sha256(const void *data, size_t len, uint8_t out[AFF_SHA256_BYTE
 extern void aff_model_digest(const uint8_t *buf, uint64_t len,
 							 uint8_t out[AFF_SHA256_BYTES]);
 
+/*
+ * The same digest, hashing the content in chunks of AFF_POLL_BYTES with a
+ * call of poll (may be NULL) between them: AFF_ERR_CANCELLED when it asks
+ * to stop.
+ */
+extern AffStatus aff_model_digest_polled(const uint8_t *buf, uint64_t len,
+										 uint8_t out[AFF_SHA256_BYTES],
+										 AffPollFn poll, void *poll_arg,
+										 AffError *err);
+
 /* 1 when the value's content_digest field is all zero (not set). */
 extern int	aff_model_digest_unset(const uint8_t *buf);
 
@@ -44,11 +54,19 @@ extern int	aff_model_digest_unset(const uint8_t *buf);
  */
 extern void aff_model_seal(uint8_t *buf, uint64_t len);
 
+/* aff_model_seal polling between chunks; on a cancel the value is unsealed. */
+extern AffStatus aff_model_seal_polled(uint8_t *buf, uint64_t len, AffPollFn poll,
+									   void *poll_arg, AffError *err);
+
 /* Characters of the base64 form of n bytes, or 0 when that overflows size_t. */
 extern size_t aff_b64_encoded_len(size_t n);
 
 /* Encode n bytes into out (aff_b64_encoded_len(n) bytes, no terminator). */
 extern void aff_b64_encode(const uint8_t *in, size_t n, char *out);
+
+/* The same text, encoded in chunks with a call of poll (may be NULL) between them. */
+extern AffStatus aff_b64_encode_polled(const uint8_t *in, size_t n, char *out,
+									   AffPollFn poll, void *poll_arg, AffError *err);
 
 /* Upper bound of the bytes that n characters of base64 decode to. */
 extern size_t aff_b64_decoded_max(size_t n);
@@ -60,5 +78,13 @@ extern size_t aff_b64_decoded_max(size_t n);
  * *bad_at is the offset of the offending character.
  */
 extern int64_t aff_b64_decode(const char *in, size_t n, uint8_t *out, size_t *bad_at);
+
+/*
+ * aff_b64_decode with a call of poll (may be NULL) every few megabytes of
+ * text: AFF_B64_CANCELLED when it asks to stop.
+ */
+#define AFF_B64_CANCELLED	((int64_t) -2)
+extern int64_t aff_b64_decode_polled(const char *in, size_t n, uint8_t *out, size_t *bad_at,
+									 AffPollFn poll, void *poll_arg);
 
 #endif							/* AFF_DIGEST_H */

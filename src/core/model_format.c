@@ -105,9 +105,61 @@ aff_section_expected_count(const AffSectionDef *d, const AffModelHeader *h,
 	return UINT64_MAX;
 }
 
-/* A word-at-a-time multiply-xorshift hash: detects damage, not attacks. */
-uint64_t
-aff_hash(const uint8_t *p, uint64_t n, uint64_t h)
+_Static_assert(AFF_POLL_BYTES % 8 == 0 && AFF_POLL_BYTES > 0,
+			   "a poll chunk holds whole words of the hash");
+
+/* Ask poll (when there is one) whether to stop; the cancel error if so. */
+static AffStatus
+poll_now(AffPollFn poll, void *poll_arg, AffError *err)
+{
+	if (poll != NULL && poll(poll_arg))
+		return aff_fail(err, AFF_ERR_CANCELLED, "writing or checking the model was cancelled");
+	return AFF_OK;
+}
+
+/*
+ * A budget of work between two polls: poll_due() takes the bytes just
+ * handled and calls poll once every AFF_POLL_BYTES of them.
+ */
+typedef struct Poller
+{
+	AffPollFn	fn;
+	void	   *arg;
+	uint64_t	left;			/* bytes until the next poll */
+} Poller;
+
+static void
+poller_init(Poller *p, AffPollFn fn, void *arg)
+{
+	p->fn = fn;
+	p->arg = arg;
+	p->left = AFF_POLL_BYTES;
+}
+
+/* Nonzero when the callback, due after bytes more, asks to stop. */
+static inline int
+poll_due(Poller *p, uint64_t bytes)
+{
+	if (p->fn == NULL)
+		return 0;
+	if (bytes < p->left)
+	{
+		p->left -= bytes;
+		return 0;
+	}
+	p->left = AFF_POLL_BYTES;
+	return p->fn(p->arg) != 0;
+}
+
+static AffStatus
+poller_cancelled(AffError *err)
+{
+	return aff_fail(err, AFF_ERR_CANCELLED, "writing or checking the model was cancelled");
+}
+
+/* The word loop of aff_hash over n bytes, n a multiple of 8. */
+static uint64_t
+hash_words(const uint8_t *p, uint64_t n, uint64_t h)
 {
 	const uint64_t K = 0x9e3779b97f4a7c15ULL;
 	uint64_t	w;
@@ -120,6 +172,20 @@ aff_hash(const uint8_t *p, uint64_t n, uint64_t h)
 		p += 8;
 		n -= 8;
 	}
+	return h;
+}
+
+/* A word-at-a-time multiply-xorshift hash: detects damage, not attacks. */
+uint64_t
+aff_hash(const uint8_t *p, uint64_t n, uint64_t h)
+{
+	const uint64_t K = 0x9e3779b97f4a7c15ULL;
+	uint64_t	whole = n & ~(uint64_t) 7;
+	uint64_t	w;
+
+	h = hash_words(p, whole, h);
+	p += whole;
+	n -= whole;
 	w = 0;
 	memcpy(&w, p, n);
 	h = (h ^ w ^ (n << 56)) * K;
@@ -127,16 +193,53 @@ aff_hash(const uint8_t *p, uint64_t n, uint64_t h)
 	return h;
 }
 
-/* Checksum of a value of len bytes: all but the length word and itself. */
-uint64_t
-aff_model_checksum(const uint8_t *buf, uint64_t len)
+/*
+ * aff_hash of n bytes in chunks of AFF_POLL_BYTES (whole words, so the
+ * result is the one-pass result), polling between chunks.
+ */
+static AffStatus
+hash_polled(const uint8_t *p, uint64_t n, uint64_t *h, AffPollFn poll, void *poll_arg,
+			AffError *err)
+{
+	while (n > AFF_POLL_BYTES)
+	{
+		*h = hash_words(p, AFF_POLL_BYTES, *h);
+		p += AFF_POLL_BYTES;
+		n -= AFF_POLL_BYTES;
+		if (poll_now(poll, poll_arg, err) != AFF_OK)
+			return err->status;
+	}
+	*h = aff_hash(p, n, *h);
+	return AFF_OK;
+}
+
+/*
+ * Checksum of a value of len bytes: all but the length word and itself;
+ * polls between chunks (poll may be NULL).
+ */
+AffStatus
+aff_model_checksum_polled(const uint8_t *buf, uint64_t len, AffPollFn poll, void *poll_arg,
+						  uint64_t *sum, AffError *err)
 {
 	size_t		off = offsetof(AffModelHeader, checksum);
 	uint64_t	h = 0x5851f42d4c957f2dULL;
 
 	h = aff_hash(buf + 4, off - 4, h);
-	h = aff_hash(buf + off + 8, len - off - 8, h);
-	return h ^ (h >> 31);
+	if (hash_polled(buf + off + 8, len - off - 8, &h, poll, poll_arg, err) != AFF_OK)
+		return err->status;
+	*sum = h ^ (h >> 31);
+	return AFF_OK;
+}
+
+/* Checksum of a value of len bytes, in one go. */
+uint64_t
+aff_model_checksum(const uint8_t *buf, uint64_t len)
+{
+	AffError	err;
+	uint64_t	sum = 0;
+
+	(void) aff_model_checksum_polled(buf, len, NULL, NULL, &sum, &err);
+	return sum;
 }
 
 static uint64_t
@@ -173,20 +276,53 @@ aff_model_size(const AffModelParts *parts, uint64_t *size, AffError *err)
 }
 
 /*
- * Write the value into buf (size bytes from aff_model_size).  Padding is
- * zeroed so equal content gives equal bytes.
+ * Copy bytes from src to dst and fold them into the fingerprint *fp (as
+ * aff_hash(dst, bytes, *fp) would), a chunk of AFF_POLL_BYTES at a time
+ * with a poll between chunks.  hash says whether the bytes are
+ * fingerprinted.
  */
-void
-aff_model_write(const AffModelParts *parts, uint8_t *buf, uint64_t size)
+static AffStatus
+copy_section(uint8_t *dst, const uint8_t *src, uint64_t bytes, bool hash, uint64_t *fp,
+			 AffPollFn poll, void *poll_arg, AffError *err)
+{
+	while (bytes > AFF_POLL_BYTES)
+	{
+		memcpy(dst, src, AFF_POLL_BYTES);
+		if (hash)
+			*fp = hash_words(dst, AFF_POLL_BYTES, *fp);
+		dst += AFF_POLL_BYTES;
+		src += AFF_POLL_BYTES;
+		bytes -= AFF_POLL_BYTES;
+		if (poll_now(poll, poll_arg, err) != AFF_OK)
+			return err->status;
+	}
+	if (bytes > 0)
+		memcpy(dst, src, bytes);
+	if (hash)
+		*fp = aff_hash(dst, bytes, *fp);
+	return AFF_OK;
+}
+
+/*
+ * Write the value into buf (size bytes from aff_model_size), polling
+ * between chunks of every section (poll may be NULL); AFF_ERR_CANCELLED
+ * when poll asks to stop, with buf half written.  The bytes no section
+ * covers (the length word, the table's and each section's padding) are
+ * zeroed, and every other byte is written once, so equal content gives
+ * equal bytes.
+ */
+AffStatus
+aff_model_write_polled(const AffModelParts *parts, uint8_t *buf, uint64_t size,
+					   AffPollFn poll, void *poll_arg, AffError *err)
 {
 	AffModelHeader h = parts->h;
 	AffSection *table = (AffSection *) (buf + sizeof(AffModelHeader));
 	uint64_t	off;
 	uint64_t	fp = 0x2545f4914f6cdd1dULL;
+	uint64_t	sum;
 	int			n = 0;
 	int			k;
 
-	memset(buf, 0, size);
 	for (k = 1; k <= AFF_SEC_MAX; k++)
 		if (parts->data[k] != NULL)
 			n++;
@@ -198,6 +334,7 @@ aff_model_write(const AffModelParts *parts, uint8_t *buf, uint64_t size)
 	h.fingerprint = 0;
 
 	off = table_end(n);
+	memset(buf, 0, off);
 	n = 0;
 	for (k = 1; k <= AFF_SEC_MAX; k++)
 	{
@@ -210,10 +347,10 @@ aff_model_write(const AffModelParts *parts, uint8_t *buf, uint64_t size)
 		table[n].elem_size = (uint32_t) aff_section_elem_size(k);
 		table[n].offset = off;
 		table[n].count = parts->count[k];
-		if (bytes > 0)
-			memcpy(buf + off, parts->data[k], bytes);
-		if (k != AFF_SEC_SWEEP_SECONDS)
-			fp = aff_hash(buf + off, bytes, fp);
+		if (copy_section(buf + off, parts->data[k], bytes, k != AFF_SEC_SWEEP_SECONDS, &fp,
+						 poll, poll_arg, err) != AFF_OK)
+			return err->status;
+		memset(buf + off + bytes, 0, ALIGN8(bytes) - bytes);
 		off += ALIGN8(bytes);
 		n++;
 	}
@@ -230,8 +367,19 @@ aff_model_write(const AffModelParts *parts, uint8_t *buf, uint64_t size)
 	}
 	h.fingerprint = fp;
 	memcpy(buf + 4, ((const uint8_t *) &h) + 4, sizeof(h) - 4);
-	h.checksum = aff_model_checksum(buf, size);
-	memcpy(buf + offsetof(AffModelHeader, checksum), &h.checksum, 8);
+	if (aff_model_checksum_polled(buf, size, poll, poll_arg, &sum, err) != AFF_OK)
+		return err->status;
+	memcpy(buf + offsetof(AffModelHeader, checksum), &sum, 8);
+	return AFF_OK;
+}
+
+/* Write the value into buf in one go (aff_model_write_polled without a poll). */
+void
+aff_model_write(const AffModelParts *parts, uint8_t *buf, uint64_t size)
+{
+	AffError	err;
+
+	(void) aff_model_write_polled(parts, buf, size, NULL, NULL, &err);
 }
 
 /*
@@ -414,26 +562,38 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 	return AFF_OK;
 }
 
+/* Elements a content scan handles between two looks at its poll budget. */
+#define SCAN_BLOCK 65536
+
+/* 1 when k[0..n) is strictly ascending, 0 when not, -1 when cancelled. */
 static int
-strictly_ascending(const int64_t *k, int64_t n)
+strictly_ascending(const int64_t *k, int64_t n, Poller *p)
 {
 	int64_t		i;
 
 	for (i = 1; i < n; i++)
+	{
 		if (k[i] <= k[i - 1])
 			return 0;
+		if ((i % SCAN_BLOCK) == 0 && poll_due(p, SCAN_BLOCK * sizeof(int64_t)))
+			return -1;
+	}
 	return 1;
 }
 
-/* Index of the first non-finite value, or -1. */
+/* Index of the first non-finite value, -1 when none, -2 when cancelled. */
 static int64_t
-first_non_finite_f(const float *x, uint64_t n)
+first_non_finite_f(const float *x, uint64_t n, Poller *p)
 {
 	uint64_t	i;
 
 	for (i = 0; i < n; i++)
+	{
 		if (!isfinite(x[i]))
 			return (int64_t) i;
+		if ((i % SCAN_BLOCK) == 0 && i > 0 && poll_due(p, SCAN_BLOCK * sizeof(float)))
+			return -2;
+	}
 	return -1;
 }
 
@@ -456,17 +616,24 @@ check_options(const AffModelHeader *h, AffError *err)
 	return AFF_OK;
 }
 
-/* The content checks that the structural view leaves out. */
+/*
+ * The content checks that the structural view leaves out, calling the
+ * poller's callback every AFF_POLL_BYTES or so of the bytes scanned.
+ */
 static AffStatus
-check_content(const AffModelView *v, AffError *err)
+check_content(const AffModelView *v, Poller *p, AffError *err)
 {
 	const AffModelHeader *h = v->h;
 	int64_t		u;
 	int64_t		j;
 	int64_t		bad;
+	int			asc;
 
-	if (!strictly_ascending(v->user_keys, h->n_users) ||
-		!strictly_ascending(v->item_keys, h->n_items))
+	if ((asc = strictly_ascending(v->user_keys, h->n_users, p)) == 1)
+		asc = strictly_ascending(v->item_keys, h->n_items, p);
+	if (asc < 0)
+		return poller_cancelled(err);
+	if (asc == 0)
 		return corrupt(err, "A key dictionary is not strictly ascending (%llu users, %llu items).",
 					   (uint64_t) h->n_users, (uint64_t) h->n_items);
 	if (v->seen_ptr[0] != 0 || v->seen_ptr[h->n_users] != h->nnz)
@@ -489,37 +656,62 @@ check_content(const AffModelView *v, AffError *err)
 				return corrupt(err, "Training weight %llu of user index %llu is not a positive number.",
 							   (uint64_t) j, (uint64_t) u);
 		}
+		/* the user's offset, items and weights */
+		if (poll_due(p, 8 + 8 * (uint64_t) (v->seen_ptr[u + 1] - v->seen_ptr[u])))
+			return poller_cancelled(err);
 	}
 	for (j = 0; j < h->n_items; j++)
+	{
 		if (!(v->popularity[j] >= 0) || !isfinite(v->popularity[j]))
 			return corrupt(err, "Popularity of item index %llu is not a finite non-negative number.",
 						   (uint64_t) j, 0);
+		if ((j % SCAN_BLOCK) == 0 && poll_due(p, SCAN_BLOCK * sizeof(float)))
+			return poller_cancelled(err);
+	}
 	for (j = 0; j < v->n_sweeps; j++)
+	{
 		if (!isfinite(v->loss[j]) || !isfinite(v->sweep_seconds[j]))
 			return corrupt(err, "Loss or timing of sweep %llu is not finite.",
 						   (uint64_t) j + 1, 0);
+		if ((j % SCAN_BLOCK) == 0 && poll_due(p, SCAN_BLOCK * 2 * sizeof(double)))
+			return poller_cancelled(err);
+	}
 	if (v->user_factors != NULL && v->item_factors != NULL)
 	{
 		uint64_t	f = (uint64_t) h->factors;
 
-		if ((bad = first_non_finite_f(v->user_factors, f * h->n_users)) >= 0)
+		if ((bad = first_non_finite_f(v->user_factors, f * h->n_users, p)) == -2)
+			return poller_cancelled(err);
+		if (bad >= 0)
 			return corrupt(err, "User factor %llu of user index %llu is not finite.",
 						   (uint64_t) bad % f, (uint64_t) bad / f);
-		if ((bad = first_non_finite_f(v->item_factors, f * h->n_items)) >= 0)
+		if ((bad = first_non_finite_f(v->item_factors, f * h->n_items, p)) == -2)
+			return poller_cancelled(err);
+		if (bad >= 0)
 			return corrupt(err, "Item factor %llu of item index %llu is not finite.",
 						   (uint64_t) bad % f, (uint64_t) bad / f);
 	}
-	if (h->key_type == AFF_KEYS_TEXT &&
-		(aff_check_text_keys(h->text_hash_key, v->user_keys, h->n_users, v->user_text_off,
-							 v->user_text, v->user_text_len, "user", err) != AFF_OK ||
-		 aff_check_text_keys(h->text_hash_key, v->item_keys, h->n_items, v->item_text_off,
-							 v->item_text, v->item_text_len, "item", err) != AFF_OK))
-		return err->status;
+	/* each side's texts are hashed in one call, a poll after each */
+	if (h->key_type == AFF_KEYS_TEXT)
+	{
+		if (aff_check_text_keys(h->text_hash_key, v->user_keys, h->n_users, v->user_text_off,
+								v->user_text, v->user_text_len, "user", err) != AFF_OK)
+			return err->status;
+		if (poll_due(p, AFF_POLL_BYTES))
+			return poller_cancelled(err);
+		if (aff_check_text_keys(h->text_hash_key, v->item_keys, h->n_items, v->item_text_off,
+								v->item_text, v->item_text_len, "item", err) != AFF_OK)
+			return err->status;
+		if (poll_due(p, AFF_POLL_BYTES))
+			return poller_cancelled(err);
+	}
 	if (v->item_weights != NULL)
 	{
 		uint64_t	n = (uint64_t) h->n_items * (uint64_t) h->n_items;
 
-		if ((bad = first_non_finite_f(v->item_weights, n)) >= 0)
+		if ((bad = first_non_finite_f(v->item_weights, n, p)) == -2)
+			return poller_cancelled(err);
+		if (bad >= 0)
 			return corrupt(err, "Item weight %llu of item index %llu is not finite.",
 						   (uint64_t) bad % h->n_items, (uint64_t) bad / h->n_items);
 	}
@@ -543,23 +735,42 @@ check_content(const AffModelView *v, AffError *err)
 					v->neighbor_idx[k] == j || !isfinite(v->neighbor_sim[k]))
 					return corrupt(err, "Neighbour %llu of item index %llu is out of range or not finite.",
 								   (uint64_t) k, (uint64_t) j);
+			if (poll_due(p, 8 + 8 * (uint64_t) (v->neighbor_ptr[j + 1] - v->neighbor_ptr[j])))
+				return poller_cancelled(err);
 		}
 	}
 	return check_options(h, err);
 }
 
-/* Full validation of len bytes at buf; fills *v on success. */
+/*
+ * Full validation of len bytes at buf; fills *v on success.  Polls between
+ * chunks of the checksum and of the content scan (poll may be NULL) and
+ * returns AFF_ERR_CANCELLED when it asks to stop.
+ */
 AffStatus
-aff_model_validate(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
+aff_model_validate_polled(const uint8_t *buf, uint64_t len, AffModelView *v,
+						  AffPollFn poll, void *poll_arg, AffError *err)
 {
 	AffStatus	st = aff_model_view(buf, len, v, err);
+	Poller		p;
+	uint64_t	sum;
 
 	if (st != AFF_OK)
 		return st;
-	if (aff_model_checksum(buf, len) != v->h->checksum)
+	if (aff_model_checksum_polled(buf, len, poll, poll_arg, &sum, err) != AFF_OK)
+		return err->status;
+	if (sum != v->h->checksum)
 	{
 		aff_fail(err, AFF_ERR_CORRUPT, "affinity.model checksum mismatch");
 		return aff_detail(err, "The value's bytes do not match the checksum in its header; it was damaged or altered.");
 	}
-	return check_content(v, err);
+	poller_init(&p, poll, poll_arg);
+	return check_content(v, &p, err);
+}
+
+/* Full validation of len bytes at buf, in one go; fills *v on success. */
+AffStatus
+aff_model_validate(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
+{
+	return aff_model_validate_polled(buf, len, v, NULL, NULL, err);
 }

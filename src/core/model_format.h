@@ -26,6 +26,16 @@
 #define AFF_MAX_MODEL_BYTES	((uint64_t) 720 * 1024 * 1024)
 #define AFF_MAGIC			"AFMD"
 
+/*
+ * Bytes a long single-threaded step over a value (copy, hash, scan) handles
+ * between two calls of its poll callback: milliseconds of work, so a cancel
+ * is seen well within a second.  A multiple of 8 (whole words of aff_hash);
+ * tests may build the engine with a smaller one to cross many chunk edges.
+ */
+#ifndef AFF_POLL_BYTES
+#define AFF_POLL_BYTES		((uint64_t) 16 * 1024 * 1024)
+#endif
+
 /* Section kinds. */
 #define AFF_SEC_USER_KEYS		1	/* int64 [n_users], strictly ascending */
 #define AFF_SEC_ITEM_KEYS		2	/* int64 [n_items], strictly ascending */
@@ -202,12 +212,21 @@ extern AffStatus aff_model_size(const AffModelParts *parts, uint64_t *size,
 								AffError *err);
 extern void aff_model_write(const AffModelParts *parts, uint8_t *buf,
 							uint64_t size);
+extern AffStatus aff_model_write_polled(const AffModelParts *parts, uint8_t *buf,
+										uint64_t size, AffPollFn poll, void *poll_arg,
+										AffError *err);
 extern AffStatus aff_model_validate(const uint8_t *buf, uint64_t len,
 									AffModelView *view, AffError *err);
+extern AffStatus aff_model_validate_polled(const uint8_t *buf, uint64_t len,
+										   AffModelView *view, AffPollFn poll,
+										   void *poll_arg, AffError *err);
 extern AffStatus aff_model_view(const uint8_t *buf, uint64_t len,
 								AffModelView *view, AffError *err);
 extern uint64_t aff_hash(const uint8_t *p, uint64_t n, uint64_t h);
 extern uint64_t aff_model_checksum(const uint8_t *buf, uint64_t len);
+extern AffStatus aff_model_checksum_polled(const uint8_t *buf, uint64_t len,
+										   AffPollFn poll, void *poll_arg,
+										   uint64_t *sum, AffError *err);
 extern const char *aff_method_name(int method);
 
 #endif

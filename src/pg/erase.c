@@ -9,9 +9,32 @@
  */
 #include "affinity_pg.h"
 
+#include "miscadmin.h"
+
 #include "serving_common.h"
 
 #include "../core/interactions.h"
+
+/*
+ * Bytes copied between two looks for a cancel: a section of a model may
+ * hold hundreds of megabytes.
+ */
+#define COPY_CHUNK	((Size) 16 * 1024 * 1024)
+
+/* memcpy in chunks of COPY_CHUNK with CHECK_FOR_INTERRUPTS between them. */
+static void
+copy_chunked(char *dst, const char *src, Size n)
+{
+	while (n > COPY_CHUNK)
+	{
+		memcpy(dst, src, COPY_CHUNK);
+		dst += COPY_CHUNK;
+		src += COPY_CHUNK;
+		n -= COPY_CHUNK;
+		CHECK_FOR_INTERRUPTS();
+	}
+	memcpy(dst, src, n);
+}
 
 /* Copy arrays of elem bytes without the range [skip_from, skip_to). */
 static void *
@@ -19,8 +42,8 @@ copy_without(const void *src, int64 n, size_t elem, int64 skip_from, int64 skip_
 {
 	char	   *dst = palloc_extended(elem * Max(n - (skip_to - skip_from), 1), MCXT_ALLOC_HUGE);
 
-	memcpy(dst, src, elem * skip_from);
-	memcpy(dst + elem * skip_from, (const char *) src + elem * skip_to, elem * (n - skip_to));
+	copy_chunked(dst, src, elem * skip_from);
+	copy_chunked(dst + elem * skip_from, (const char *) src + elem * skip_to, elem * (n - skip_to));
 	return dst;
 }
 
@@ -33,7 +56,11 @@ offsets_without(const int64 *off, int64 n_users, int64 u)
 	int64		j;
 
 	for (j = 0; j < n_users; j++)
+	{
 		out[j] = j < u ? off[j] : off[j + 1] - span;
+		if ((j & (COPY_CHUNK / sizeof(int64) - 1)) == 0)
+			CHECK_FOR_INTERRUPTS();
+	}
 	return out;
 }
 
@@ -75,7 +102,7 @@ forget_section(const AffModelView *v, int k, int64 u, uint64 *count)
 			return offsets_without(src, h->n_users, u);
 		case AFF_FORGET_UNCOUNT:
 			pop = palloc_extended(sizeof(float) * n, MCXT_ALLOC_HUGE);
-			memcpy(pop, src, sizeof(float) * n);
+			copy_chunked((char *) pop, src, sizeof(float) * n);
 			for (j = lo; j < hi; j++)
 				pop[v->seen_items[j]] = Max(pop[v->seen_items[j]] - 1.0f, 0.0f);
 			return pop;

@@ -136,12 +136,20 @@ text_keys_valid(const int64 *off, const char *text, int64 n, int64 *index, bool 
 {
 	int			enc = GetDatabaseEncoding();
 	int64		i;
+	uint64		since_poll = 0;
 
 	for (i = 0; i < n; i++)
 	{
 		const char *s = text + off[i];
 		int			len = (int) (off[i + 1] - off[i]);
 
+		/* up to 720 MB of text: look for a cancel every few megabytes */
+		since_poll += (uint64) len + 8;
+		if (since_poll >= AFF_POLL_BYTES)
+		{
+			CHECK_FOR_INTERRUPTS();
+			since_poll = 0;
+		}
 		*index = i;
 		*nul = memchr(s, '\0', len) != NULL;
 		if (*nul || !pg_verify_mbstr(enc, s, len, true))
@@ -212,7 +220,9 @@ check_model_size(uint64 size, bool building)
  * Encode parts into a new varlena in CurrentMemoryContext, seal it with
  * its content digest and run every check a value meets on its way in.  A
  * failed check is an internal error: every value the extension returns can
- * be restored.
+ * be restored.  Each step (copy, fingerprint and checksum, digest, full
+ * validation, text checks) polls for a cancel between chunks of a few
+ * megabytes, so a cancel stops it within milliseconds.
  */
 bytea *
 model_build(const AffModelParts *parts)
@@ -222,6 +232,7 @@ model_build(const AffModelParts *parts)
 	AffError	err;
 	uint64		size;
 	bytea	   *v;
+	AffStatus	rc;
 
 	/* the fingerprint is computed over a header whose digest is zero */
 	memset(p.h.content_digest, 0, sizeof(p.h.content_digest));
@@ -229,10 +240,13 @@ model_build(const AffModelParts *parts)
 		report_engine_error(&err);
 	check_model_size(size, true);
 	v = (bytea *) palloc_extended(size, MCXT_ALLOC_HUGE);
-	aff_model_write(&p, (uint8 *) v, size);
+	engine_check(aff_model_write_polled(&p, (uint8 *) v, size, engine_poll, NULL, &err), &err);
 	SET_VARSIZE(v, size);
-	aff_model_seal((uint8 *) v, size);
-	if (aff_model_validate((const uint8 *) v, size, &view, &err) != AFF_OK)
+	engine_check(aff_model_seal_polled((uint8 *) v, size, engine_poll, NULL, &err), &err);
+	rc = aff_model_validate_polled((const uint8 *) v, size, &view, engine_poll, NULL, &err);
+	if (rc == AFF_ERR_CANCELLED)
+		engine_check(rc, &err);
+	if (rc != AFF_OK)
 		ereport(ERROR,
 				(errcode(ERRCODE_INTERNAL_ERROR),
 				 errmsg("affinity built a model value that fails its own validation"),
@@ -243,9 +257,10 @@ model_build(const AffModelParts *parts)
 
 /*
  * The checks of a value on its way in (v: a fresh varlena of its own,
- * modified in place): size, full validation, text keys, content digest.
- * A value without a digest (written before the digest existed) gets one,
- * and the checksum that covers it; its fingerprint stays as stored.
+ * modified in place): size, full validation, text keys, content digest,
+ * each polling for a cancel between chunks.  A value without a digest
+ * (written before the digest existed) gets one, and the checksum that
+ * covers it; its fingerprint stays as stored.
  */
 static void
 model_accept(bytea *v)
@@ -253,6 +268,7 @@ model_accept(bytea *v)
 	uint64		size = VARSIZE(v);
 	AffModelView view;
 	AffError	err;
+	AffStatus	rc;
 	uint8		digest[AFF_SHA256_BYTES];
 
 	check_model_size(size, false);
@@ -262,15 +278,19 @@ model_accept(bytea *v)
 				 errmsg("invalid affinity.model value"),
 				 errdetail("The value has " UINT64_FORMAT " bytes, fewer than a model header.",
 						   size - VARHDRSZ)));
-	if (aff_model_validate((const uint8 *) v, size, &view, &err) != AFF_OK)
+	rc = aff_model_validate_polled((const uint8 *) v, size, &view, engine_poll, NULL, &err);
+	if (rc == AFF_ERR_CANCELLED)
+		engine_check(rc, &err);
+	if (rc != AFF_OK)
 		report_engine_error(&err);
 	check_text_keys(&view, false);
 	if (aff_model_digest_unset((const uint8 *) v))
 	{
-		aff_model_seal((uint8 *) v, size);
+		engine_check(aff_model_seal_polled((uint8 *) v, size, engine_poll, NULL, &err), &err);
 		return;
 	}
-	aff_model_digest((const uint8 *) v, size, digest);
+	engine_check(aff_model_digest_polled((const uint8 *) v, size, digest, engine_poll, NULL, &err),
+				 &err);
 	if (memcmp(digest, view.h->content_digest, AFF_SHA256_BYTES) != 0)
 		ereport(ERROR,
 				(errcode(ERRCODE_INVALID_BINARY_REPRESENTATION),
@@ -282,7 +302,7 @@ PG_FUNCTION_INFO_V1(affinity_model_in);
 
 /*
  * Text input: base64, white space ignored, decoded straight into the new
- * value (no copy of the text is made).
+ * value (no copy of the text is made), polling for a cancel as it goes.
  */
 Datum
 affinity_model_in(PG_FUNCTION_ARGS)
@@ -297,7 +317,9 @@ affinity_model_in(PG_FUNCTION_ARGS)
 	if (cap > MaxAllocHugeSize - VARHDRSZ)
 		elog(ERROR, "affinity.model text of %zu characters cannot be decoded", tlen);
 	v = (bytea *) palloc_extended(cap + VARHDRSZ, MCXT_ALLOC_HUGE);
-	n = aff_b64_decode(in, tlen, (uint8 *) VARDATA(v), &bad_at);
+	n = aff_b64_decode_polled(in, tlen, (uint8 *) VARDATA(v), &bad_at, engine_poll, NULL);
+	if (n == AFF_B64_CANCELLED)
+		engine_check(AFF_ERR_CANCELLED, NULL);
 	if (n < 0)
 		ereport(ERROR,
 				(errcode(ERRCODE_INVALID_TEXT_REPRESENTATION),
@@ -315,7 +337,8 @@ PG_FUNCTION_INFO_V1(affinity_model_out);
 
 /*
  * Text output: base64 without line breaks, sized over size_t (the text of
- * a value of AFF_MAX_MODEL_BYTES is 960 MB).  A value that cannot have a
+ * a value of AFF_MAX_MODEL_BYTES is 960 MB), encoded in chunks with a
+ * look for a cancel between them.  A value that cannot have a
  * text form under 1 GB (one built before the limit) is refused with the
  * way out.
  */
@@ -326,6 +349,7 @@ affinity_model_out(PG_FUNCTION_ARGS)
 	size_t		len = VARSIZE_ANY_EXHDR(v);
 	size_t		n = aff_b64_encoded_len(len);
 	char	   *out;
+	AffError	err;
 
 	if ((n == 0 && len > 0) || n >= MaxAllocSize)
 		ereport(ERROR,
@@ -335,9 +359,28 @@ affinity_model_out(PG_FUNCTION_ARGS)
 						   len, n),
 				 errhint("Binary COPY carries it; a model of at most 720 MB has a text form.")));
 	out = palloc_extended(n + 1, MCXT_ALLOC_HUGE);
-	aff_b64_encode((const uint8 *) VARDATA_ANY(v), len, out);
+	engine_check(aff_b64_encode_polled((const uint8 *) VARDATA_ANY(v), len, out,
+									   engine_poll, NULL, &err), &err);
 	out[n] = '\0';
 	PG_RETURN_CSTRING(out);
+}
+
+/* memcpy of n bytes in chunks, with CHECK_FOR_INTERRUPTS between them. */
+static void
+copy_polled(void *dst, const void *src, Size n)
+{
+	char	   *d = dst;
+	const char *s = src;
+
+	while (n > AFF_POLL_BYTES)
+	{
+		memcpy(d, s, AFF_POLL_BYTES);
+		d += AFF_POLL_BYTES;
+		s += AFF_POLL_BYTES;
+		n -= AFF_POLL_BYTES;
+		CHECK_FOR_INTERRUPTS();
+	}
+	memcpy(d, s, n);
 }
 
 PG_FUNCTION_INFO_V1(affinity_model_recv);
@@ -355,7 +398,7 @@ affinity_model_recv(PG_FUNCTION_ARGS)
 	data = pq_getmsgbytes(buf, len);
 	v = (bytea *) palloc_extended((Size) len + VARHDRSZ, MCXT_ALLOC_HUGE);
 	SET_VARSIZE(v, len + VARHDRSZ);
-	memcpy(VARDATA(v), data, len);
+	copy_polled(VARDATA(v), data, len);
 	pq_getmsgend(buf);
 	model_accept(v);
 	PG_RETURN_POINTER(v);
