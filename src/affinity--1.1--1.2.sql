@@ -275,177 +275,10 @@ CREATE TRIGGER models_truncate_guard BEFORE TRUNCATE ON affinity.models
 CREATE TRIGGER model_history_truncate_guard BEFORE TRUNCATE ON affinity.model_history
 	FOR EACH STATEMENT EXECUTE FUNCTION affinity.registry_truncate_guard();
 
--- define_model: the caller must be logged in as itself (the query is
--- checked here, so it runs only in its future owner's session), and may
--- redefine only a model it owns.
-CREATE OR REPLACE FUNCTION affinity.define_model(name text, source_query text, options jsonb DEFAULT '{}',
-		query_search_path text DEFAULT pg_catalog.current_setting('search_path'))
-	RETURNS void
-	LANGUAGE plpgsql VOLATILE
-	SET search_path = pg_catalog, pg_temp
-AS $$
-DECLARE
-	s record;
-	r affinity.models;
-BEGIN
-	IF name IS NULL OR source_query IS NULL OR options IS NULL OR query_search_path IS NULL THEN
-		RAISE EXCEPTION 'name, source_query and options must not be NULL'
-			USING ERRCODE = 'null_value_not_allowed';
-	END IF;
-	IF pg_catalog.jsonb_typeof(options) OPERATOR(pg_catalog.<>) 'object' THEN
-		RAISE EXCEPTION 'options must be a jsonb object'
-			USING ERRCODE = 'invalid_parameter_value',
-				  DETAIL = pg_catalog.format('The options given are %s.', options);
-	END IF;
-	SELECT * INTO r FROM affinity.models m WHERE m.name = define_model.name;
-	IF FOUND THEN
-		PERFORM affinity.require_model_owner(r.name, r.owner, r.owner_name, 'redefinition');
-	ELSE
-		s := affinity.registry_session();
-		IF s.login_role IS DISTINCT FROM s.acting_role OR s.session_role IS DISTINCT FROM s.acting_role THEN
-			RAISE EXCEPTION 'define_model must run in a session logged in as the role that will own model "%"', name
-				USING ERRCODE = 'insufficient_privilege',
-					  DETAIL = pg_catalog.format('The current user is %s, the session user %s, the login role %s.',
-												 current_user, session_user,
-												 coalesce((SELECT x.rolname FROM pg_catalog.pg_roles x WHERE x.oid = s.login_role),
-														  'unknown')),
-					  HINT = pg_catalog.format('Connect as %s: a model''s query is checked and run only in sessions logged in as its owner.', current_user);
-		END IF;
-	END IF;
-	-- the query must yield user_id, item_id and weight
-	PERFORM pg_catalog.set_config('search_path', query_search_path, true);
-	BEGIN
-		EXECUTE pg_catalog.format('SELECT user_id::bigint, item_id::bigint, weight::real FROM (%s) AS q LIMIT 0',
-								  source_query);
-	EXCEPTION WHEN OTHERS THEN
-		RAISE EXCEPTION 'the source query of model "%" cannot feed a fit', name
-			USING ERRCODE = 'invalid_parameter_value',
-				  DETAIL = SQLERRM,
-				  HINT = 'The query must yield columns user_id, item_id and weight (castable to bigint, bigint, real).';
-	END;
-	PERFORM pg_catalog.set_config('search_path', 'pg_catalog, pg_temp', true);
-	INSERT INTO affinity.models AS m (name, source_query, options, search_path)
-	VALUES (define_model.name, define_model.source_query, define_model.options,
-			define_model.query_search_path)
-	ON CONFLICT ON CONSTRAINT models_pkey DO UPDATE
-		SET source_query = EXCLUDED.source_query, options = EXCLUDED.options,
-			search_path = EXCLUDED.search_path;
-END
-$$;
-
--- refresh: the query runs only in a session logged in as the model's owner,
--- with no role switch at all; a query that switches role is refused.
-CREATE OR REPLACE FUNCTION affinity.refresh(name text)
-	RETURNS jsonb
-	LANGUAGE plpgsql VOLATILE
-	SET search_path = pg_catalog, pg_temp
-AS $$
-DECLARE
-	r affinity.models;
-	s record;
-	fitted affinity.model;
-	started timestamptz := clock_timestamp();
-	d jsonb;
-	result jsonb;
-	new_version integer;
-	msg text;
-	detail text;
-BEGIN
-	-- the owner check comes before the row lock, which needs UPDATE rights
-	SELECT * INTO r FROM affinity.models m WHERE m.name = refresh.name;
-	IF NOT FOUND THEN
-		RAISE EXCEPTION 'no model named "%"', name
-			USING ERRCODE = 'undefined_object',
-				  HINT = 'Register it first with affinity.define_model(name, source_query, options).';
-	END IF;
-	PERFORM affinity.require_model_owner(r.name, r.owner, r.owner_name, 'refresh');
-	-- one refresh of a name at a time: a second one waits for the first;
-	-- the row may have changed meanwhile, so it is checked again
-	SELECT * INTO r FROM affinity.models m WHERE m.name = refresh.name FOR UPDATE;
-	IF NOT FOUND THEN
-		RAISE EXCEPTION 'no model named "%"', name USING ERRCODE = 'undefined_object';
-	END IF;
-	PERFORM affinity.require_model_owner(r.name, r.owner, r.owner_name, 'refresh');
-	PERFORM set_config('search_path', r.search_path, true);
-	BEGIN
-		EXECUTE format('SELECT affinity.fit(user_id::bigint, item_id::bigint, weight::real, $1) FROM (%s) AS q',
-					   r.source_query)
-			INTO fitted USING r.options;
-		s := affinity.registry_session();
-		IF s.session_role IS DISTINCT FROM r.owner::oid OR s.acting_role IS DISTINCT FROM r.owner::oid THEN
-			RAISE EXCEPTION 'the source query switched to role %', current_user
-				USING ERRCODE = 'insufficient_privilege',
-					  DETAIL = pg_catalog.format('A refresh runs as the model''s owner %s from start to end.', r.owner_name);
-		END IF;
-		PERFORM set_config('search_path', 'pg_catalog, pg_temp', true);
-	EXCEPTION WHEN OTHERS THEN
-		GET STACKED DIAGNOSTICS msg = MESSAGE_TEXT, detail = PG_EXCEPTION_DETAIL;
-		IF coalesce(detail, '') = '' THEN
-			RAISE EXCEPTION 'refresh of model "%" failed: %', name, msg
-				USING ERRCODE = SQLSTATE, HINT = 'The current model stays in place.';
-		END IF;
-		RAISE EXCEPTION 'refresh of model "%" failed: %', name, msg
-			USING ERRCODE = SQLSTATE, DETAIL = detail,
-				  HINT = 'The current model stays in place.';
-	END;
-	-- after a revert the current version is not the newest one kept
-	SELECT greatest(r.version, coalesce(max(h.version), 0)) + 1 INTO new_version
-		FROM affinity.model_history h WHERE h.name = refresh.name;
-	d := affinity.describe(fitted);
-	result := jsonb_build_object(
-		'name', name, 'version', new_version, 'method', d->'method',
-		'rows', d->'rows_read', 'users', d->'users', 'items', d->'items',
-		'interactions', d->'interactions', 'fit_seconds', d->'fit_seconds',
-		'seconds', extract(epoch FROM clock_timestamp() - started),
-		'final_loss', d->'loss'->-1, 'size_bytes', d->'size_bytes');
-	UPDATE affinity.models m
-		SET model = fitted, version = new_version, fitted_at = now(), stats = result
-		WHERE m.name = refresh.name;
-	INSERT INTO affinity.model_history (name, version, model, fitted_at, stats)
-		VALUES (name, new_version, fitted, now(), result);
-	DELETE FROM affinity.model_history h
-		WHERE h.name = refresh.name AND h.version <= new_version - r.keep_versions;
-	RETURN result;
-END
-$$;
-
--- revert_model: the owner's, in its own session, like refresh.
-CREATE OR REPLACE FUNCTION affinity.revert_model(name text, to_version integer DEFAULT NULL)
-	RETURNS jsonb
-	LANGUAGE plpgsql VOLATILE
-	SET search_path = pg_catalog, pg_temp
-AS $$
-DECLARE
-	r affinity.models;
-	h affinity.model_history;
-BEGIN
-	SELECT * INTO r FROM affinity.models m WHERE m.name = revert_model.name;
-	IF NOT FOUND THEN
-		RAISE EXCEPTION 'no model named "%"', name USING ERRCODE = 'undefined_object';
-	END IF;
-	PERFORM affinity.require_model_owner(r.name, r.owner, r.owner_name, 'revert');
-	SELECT * INTO r FROM affinity.models m WHERE m.name = revert_model.name FOR UPDATE;
-	IF NOT FOUND THEN
-		RAISE EXCEPTION 'no model named "%"', name USING ERRCODE = 'undefined_object';
-	END IF;
-	PERFORM affinity.require_model_owner(r.name, r.owner, r.owner_name, 'revert');
-	SELECT * INTO h FROM affinity.model_history x
-		WHERE x.name = revert_model.name
-		  AND x.version = coalesce(to_version,
-								   (SELECT max(y.version) FROM affinity.model_history y
-									WHERE y.name = revert_model.name AND y.version < r.version));
-	IF NOT FOUND THEN
-		RAISE EXCEPTION 'model "%" has no version % in its history', name,
-			coalesce(to_version::text, 'before ' || r.version)
-			USING ERRCODE = 'undefined_object',
-				  HINT = 'Kept versions are listed in affinity.model_history.';
-	END IF;
-	UPDATE affinity.models m
-		SET model = h.model, version = h.version, fitted_at = h.fitted_at, stats = h.stats
-		WHERE m.name = revert_model.name;
-	RETURN jsonb_build_object('name', name, 'version', h.version, 'fitted_at', h.fitted_at);
-END
-$$;
+-- define_model, refresh and revert_model are written once, in the section
+-- "The registry: key types from the query" below: a model's query is checked
+-- and run only in a session logged in as its owner (require_model_owner),
+-- with no role switch at all, and only the owner redefines or reverts it.
 
 -- Aggregates: what the final functions do ----------------------------------
 
@@ -674,8 +507,10 @@ END
 $$;
 ALTER TABLE affinity.models ENABLE TRIGGER models_guard;
 
--- define_model gains keep_versions (NULL: 3 for a new model, unchanged for
--- a redefined one) and stores the query's key types.
+-- define_model: the caller must be logged in as itself (the query is checked
+-- here, so it runs only in its future owner's session) and may redefine only
+-- a model it owns; keep_versions (NULL: 3 for a new model, unchanged for a
+-- redefined one); the query's key types are stored.
 DROP FUNCTION affinity.define_model(text, text, jsonb, text);
 CREATE FUNCTION affinity.define_model(name text, source_query text, options jsonb DEFAULT '{}',
 		query_search_path text DEFAULT pg_catalog.current_setting('search_path'),
@@ -757,8 +592,10 @@ END
 $$;
 COMMENT ON FUNCTION affinity.define_model(text, text, jsonb, text, integer) IS 'register or redefine a named model: its query (checked in the owner''s session), options, search_path and history size, with the key types its query yields';
 
--- refresh: the query's key types are checked against the stored ones before
--- the fit, and the fit is called for exactly those types.
+-- refresh: the query runs only in a session logged in as the model's owner,
+-- with no role switch at all (a query that switches role is refused); its
+-- key types are checked against the stored ones before the fit, and the fit
+-- is called for exactly those types.
 CREATE OR REPLACE FUNCTION affinity.refresh(name text)
 	RETURNS jsonb
 	LANGUAGE plpgsql VOLATILE
@@ -857,8 +694,8 @@ BEGIN
 END
 $$;
 
--- revert_model: a kept version of other key types (from before a
--- redefinition) is not brought back.
+-- revert_model: the owner's, in its own session, like refresh; a kept
+-- version of other key types (from before a redefinition) is not brought back.
 CREATE OR REPLACE FUNCTION affinity.revert_model(name text, to_version integer DEFAULT NULL)
 	RETURNS jsonb
 	LANGUAGE plpgsql VOLATILE
