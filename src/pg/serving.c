@@ -13,6 +13,7 @@
  */
 #include "serving_common.h"
 
+#include <float.h>
 #include <math.h>
 
 #include "catalog/pg_type.h"
@@ -38,16 +39,19 @@ user_scores(const AffModelView *v, int64 u, float *scores)
 
 /*
  * The best k of scores over the items that flt lets through, emitted as
- * (key, score, rank) rows.
+ * (key, score, rank) rows; a considered score that is not finite is an
+ * error naming it and request (whose scores they are).
  */
 static void
 emit_best(FunctionCallInfo fcinfo, const AffModelView *v, const float *scores,
-		  const AffItemFilter *flt, int64 k, bool users)
+		  const AffItemFilter *flt, int64 k, bool users, const char *request)
 {
 	AffTopK		t;
 
 	aff_topk_init(&t, palloc(sizeof(AffScored) * Max(k, 1)), k);
-	aff_topk_scores(scores, users ? v->h->n_users : v->h->n_items, flt, &t);
+	check_finite_scores(v, users,
+						aff_topk_scores(scores, users ? v->h->n_users : v->h->n_items, flt, &t),
+						request);
 	emit_topk(fcinfo, &t, v, users);
 }
 
@@ -141,7 +145,8 @@ top_items(PG_FUNCTION_ARGS)
 		meth->candidate_scores(&s, u, flt.cand, flt.n_cand, scores);
 	else
 		meth->user_scores(&s, u, scores);
-	emit_best(fcinfo, v, scores, &flt, k, false);
+	emit_best(fcinfo, v, scores, &flt, k, false,
+			  u < 0 ? "an unknown user" : psprintf("user %s", key_cstring(v, true, u)));
 	return (Datum) 0;
 }
 
@@ -162,7 +167,7 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 	Datum	   *we = NULL;
 	bool	   *wn = NULL;
 	int			nw = 0;
-	float	   *acc = NULL;
+	double	   *acc = NULL;
 	int32	   *idx;
 	float	   *w;
 	int			n = 0;
@@ -188,7 +193,7 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 					 errmsg("weights must have one entry per basket item"),
 					 errdetail("The basket has %d items and weights has %d entries.", nb, nw)));
 	}
-	acc = palloc0(sizeof(float) * v->h->n_items);
+	acc = palloc_extended(sizeof(double) * v->h->n_items, MCXT_ALLOC_HUGE | MCXT_ALLOC_ZERO);
 	idx = palloc(sizeof(int32) * (nb + 1));
 	w = palloc(sizeof(float) * (nb + 1));
 	for (i = 0; i < nb; i++)
@@ -219,7 +224,15 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 			continue;
 		if (acc[j] == 0)
 			idx[n++] = (int32) j;
+		/* summed in double: a sum beyond the range of real is refused */
 		acc[j] += wi;
+		if (acc[j] > FLT_MAX)
+			ereport(ERROR,
+					(errcode(ERRCODE_NUMERIC_VALUE_OUT_OF_RANGE),
+					 errmsg("basket weights add up beyond the range of real"),
+					 errdetail("The weights of basket item %s add up to %g at element %d; the largest real is %g.",
+							   key_cstring(v, false, j), acc[j], i + 1, (double) FLT_MAX),
+					 errhint("Give each item once with its total weight, scaled down.")));
 	}
 	/* ascending indices, as the engine's training lists are */
 	for (i = 1; i < n; i++)
@@ -235,7 +248,7 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 		idx[p + 1] = t;
 	}
 	for (i = 0; i < n; i++)
-		w[i] = acc[idx[i]];
+		w[i] = (float) acc[idx[i]];
 	pfree(acc);
 	*idx_out = idx;
 	*w_out = w;
@@ -303,7 +316,7 @@ top_items_basket(PG_FUNCTION_ARGS)
 		serve_context(e, &s, &a, SERVE_GRAM);
 		serve_check(meth->basket_scores(&s, idx, w, n, scores, &err), &err);
 	}
-	emit_best(fcinfo, v, scores, &flt, k, false);
+	emit_best(fcinfo, v, scores, &flt, k, false, "the basket");
 	return (Datum) 0;
 }
 
@@ -354,7 +367,8 @@ items_like(PG_FUNCTION_ARGS)
 	skip = palloc(v->h->n_items);
 	meth->item_row(&s, it, sims, skip);
 	flt.skip = skip;
-	emit_best(fcinfo, v, sims, &flt, k, false);
+	emit_best(fcinfo, v, sims, &flt, k, false,
+			  psprintf("the items like item %s", key_cstring(v, false, it)));
 	return (Datum) 0;
 }
 
@@ -398,7 +412,8 @@ users_like(PG_FUNCTION_ARGS)
 	skip[u] = 1;
 	memset(&flt, 0, sizeof(flt));
 	flt.skip = skip;
-	emit_best(fcinfo, v, sims, &flt, k, true);
+	emit_best(fcinfo, v, sims, &flt, k, true,
+			  psprintf("the users like user %s", key_cstring(v, true, u)));
 	return (Datum) 0;
 }
 
@@ -474,7 +489,15 @@ reasons(PG_FUNCTION_ARGS)
 	/* heap over positions in the training list; they follow key order */
 	aff_topk_init(&t, palloc(sizeof(AffScored) * Max(Min(k, n), 1)), Min(k, n));
 	memset(&flt, 0, sizeof(flt));
-	aff_topk_scores(contrib, n, &flt, &t);
+	r = aff_topk_scores(contrib, n, &flt, &t);
+	if (r >= 0)
+		ereport(ERROR,
+				(errcode(ERRCODE_NUMERIC_VALUE_OUT_OF_RANGE),
+				 errmsg("a contribution is not finite"),
+				 errdetail("The contribution of item %s to the score of item %s for user %s overflowed the range of real.",
+						   key_cstring(v, false, v->seen_items[v->seen_ptr[u] + r]),
+						   key_cstring(v, false, i), key_cstring(v, true, u)),
+				 errhint("The model's vectors are too large for float arithmetic; refit with a larger regularization.")));
 	n = aff_topk_finish(&t);
 	for (r = 0; r < n; r++)
 	{

@@ -360,6 +360,7 @@ test_method(int method, int64_t users, int64_t items)
 	AffServe	s;
 	AffBatch	b;
 	AffError	err;
+	AffStatus	st;
 	int64_t		n_items;
 	float	   *scores;
 	float	   *scores1;
@@ -401,11 +402,21 @@ test_method(int method, int64_t users, int64_t items)
 	if (meth->has_factors)
 	{
 		float	   *nrm = aff_alloc_array(&a, (size_t) n_items, sizeof(float));
+		double		nerr = 0;
 
+		/* the serving norms against sqrt of a double sum of squares */
+		aff_row_norms(v.item_factors, n_items, v.h->factors, nrm);
 		for (i = 0; i < n_items; i++)
-			nrm[i] = sqrtf((float) naive_pair(&(AffModelView)
-											  {.h = v.h, .user_factors = v.item_factors,
-											   .item_factors = v.item_factors}, i, i));
+		{
+			double		want = sqrt(naive_pair(&(AffModelView)
+											   {.h = v.h, .user_factors = v.item_factors,
+												.item_factors = v.item_factors}, i, i));
+
+			nerr = fmax(nerr, fabs(nrm[i] - want) / fmax(want, 1e-30));
+		}
+		snprintf(what, sizeof(what), "%s: item norms = sqrt of the sum of squares (max relative error)",
+				 meth->name);
+		check(nerr <= 4e-6, what, nerr, 4e-6);	/* measured 3.9e-8 */
 		s.item_norms = nrm;
 	}
 
@@ -592,6 +603,39 @@ test_method(int method, int64_t users, int64_t items)
 		snprintf(what, sizeof(what), "%s: top-k with mask, seen list and candidates = brute force", meth->name);
 		check(is_topk(scores, n_items, bad, heap, t.n, 8), what, 1, 1);
 	}
+	/* a score that is not finite is never ranked: the kernels name it */
+	{
+		AffItemFilter flt = {NULL, NULL, 0, NULL, 0};
+		AffScored	heap[4];
+		AffTopK		t;
+		int64_t		bad;
+		int			clean = 1;
+		int64_t		r;
+
+		meth->user_scores(&s, 1, scores);
+		scores[7] = NAN;
+		scores[9] = INFINITY;
+		aff_topk_init(&t, heap, 4);
+		bad = aff_topk_scores(scores, n_items, &flt, &t);
+		aff_topk_finish(&t);
+		for (r = 0; r < t.n; r++)
+			clean &= isfinite(heap[r].score) != 0;
+		snprintf(what, sizeof(what), "%s: top-k refuses NaN and infinite scores, naming the first", meth->name);
+		check(bad == 7 && clean && t.n == 4, what, (double) bad, 7);
+		if (method == AFF_METHOD_IMPLICIT_ALS)
+		{
+			float		save = v.user_factors[5 * v.h->factors];
+
+			/* the view is our own buffer: make user 5's scores NaN */
+			((float *) v.user_factors)[5 * v.h->factors] = NAN;
+			st = aff_batch_run(&b, all_users, v.h->n_users, no_poll, NULL, &err);
+			((float *) v.user_factors)[5 * v.h->factors] = save;
+			check(st == AFF_ERR_NUMERIC && b.bad_user == 5 && b.bad_item == 0,
+				  "implicit_als: the batch refuses a user's NaN scores, naming user and item",
+				  (double) b.bad_user, 5);
+		}
+	}
+	aff_batch_free(&b, &a);
 	arena_free(&ar);
 }
 
