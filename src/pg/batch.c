@@ -29,6 +29,7 @@ emit_chunk(FunctionCallInfo fcinfo, const AffModelView *v, const int32 *users,
 	int64		r;
 	int64		j;
 
+	AFF_ASSERT(n >= 0 && n <= b->chunk);
 	for (r = 0; r < n; r++)
 		for (j = 0; j < b->kept[r]; j++)
 		{

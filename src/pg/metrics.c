@@ -581,6 +581,7 @@ score_user(const AffModelView *v, int64 u, int64 k, const uint8 *rel, int64 n_re
 	int64		n;
 	int64		r;
 
+	AFF_ASSERT(u >= 0 && u < v->h->n_users && k >= 1);
 	/* the user's unseen items, through the engine's top-k kernel */
 	user_scores(v, u, scores);
 	memset(&flt, 0, sizeof(flt));

@@ -78,6 +78,19 @@ mask_items(FunctionCallInfo fcinfo, int argno, const AffModelView *v, uint8 *ski
 		skip[idx[i]] = 1;
 }
 
+/* The candidate list of argument argno (when not NULL) into flt. */
+static void
+candidate_items(FunctionCallInfo fcinfo, int argno, const AffModelView *v,
+				AffItemFilter *flt)
+{
+	int			n = 0;
+
+	if (PG_ARGISNULL(argno))
+		return;
+	flt->cand = array_key_indices(fcinfo, argno, v, false, &n);
+	flt->n_cand = n;
+}
+
 static float *
 alloc_scores(const AffModelView *v)
 {
@@ -103,7 +116,6 @@ top_items(PG_FUNCTION_ARGS)
 	int64		u;
 	uint8	   *skip;
 	float	   *scores;
-	int			n_cand = 0;
 
 	materialize(fcinfo);
 	if (PG_ARGISNULL(0) || PG_ARGISNULL(1))
@@ -128,11 +140,7 @@ top_items(PG_FUNCTION_ARGS)
 	skip = palloc0(v->h->n_items);
 	mask_items(fcinfo, 4, v, skip);
 	flt.skip = skip;
-	if (!PG_ARGISNULL(5))
-	{
-		flt.cand = array_key_indices(fcinfo, 5, v, false, &n_cand);
-		flt.n_cand = n_cand;
-	}
+	candidate_items(fcinfo, 5, v, &flt);
 
 	scores = alloc_scores(v);
 	memset(&s, 0, sizeof(s));
@@ -247,8 +255,13 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 		}
 		idx[p + 1] = t;
 	}
+	AFF_ASSERT(n <= nb);
 	for (i = 0; i < n; i++)
+	{
+		AFF_ASSERT(i == 0 || idx[i - 1] < idx[i]);
+		AFF_ASSERT(acc[idx[i]] > 0 && acc[idx[i]] <= FLT_MAX);
 		w[i] = (float) acc[idx[i]];
+	}
 	pfree(acc);
 	*idx_out = idx;
 	*w_out = w;
@@ -278,7 +291,6 @@ top_items_basket(PG_FUNCTION_ARGS)
 	float	   *w;
 	int			n;
 	uint8	   *skip;
-	int			n_cand = 0;
 	float	   *scores;
 	int			i;
 
@@ -302,11 +314,7 @@ top_items_basket(PG_FUNCTION_ARGS)
 	mask_items(fcinfo, 5, v, skip);
 	memset(&flt, 0, sizeof(flt));
 	flt.skip = skip;
-	if (!PG_ARGISNULL(6))
-	{
-		flt.cand = array_key_indices(fcinfo, 6, v, false, &n_cand);
-		flt.n_cand = n_cand;
-	}
+	candidate_items(fcinfo, 6, v, &flt);
 
 	scores = alloc_scores(v);
 	if (n == 0)
@@ -338,7 +346,6 @@ items_like(PG_FUNCTION_ARGS)
 	AffItemFilter flt;
 	int64		k;
 	int64		it;
-	int			n_cand = 0;
 	float	   *sims;
 	uint8	   *skip;
 
@@ -356,11 +363,7 @@ items_like(PG_FUNCTION_ARGS)
 	if (it < 0 || k == 0)
 		return (Datum) 0;
 	memset(&flt, 0, sizeof(flt));
-	if (!PG_ARGISNULL(3))
-	{
-		flt.cand = array_key_indices(fcinfo, 3, v, false, &n_cand);
-		flt.n_cand = n_cand;
-	}
+	candidate_items(fcinfo, 3, v, &flt);
 
 	serve_context(e, &s, &a, SERVE_ITEM_NORMS);
 	sims = alloc_scores(v);

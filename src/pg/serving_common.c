@@ -139,6 +139,7 @@ key_arg_index(FunctionCallInfo fcinfo, int argno, const AffModelView *v, bool us
 Datum
 key_datum(const AffModelView *v, bool users, int64 i)
 {
+	AFF_ASSERT(i >= 0 && i < (users ? v->h->n_users : v->h->n_items));
 	if (v->h->key_type == AFF_KEYS_TEXT)
 		return text_key_datum(v, users, i);
 	return Int64GetDatum(users ? v->user_keys[i] : v->item_keys[i]);
@@ -148,6 +149,7 @@ key_datum(const AffModelView *v, bool users, int64 i)
 char *
 key_cstring(const AffModelView *v, bool users, int64 i)
 {
+	AFF_ASSERT(i >= 0 && i < (users ? v->h->n_users : v->h->n_items));
 	if (v->h->key_type == AFF_KEYS_TEXT)
 		return TextDatumGetCString(text_key_datum(v, users, i));
 	return psprintf(INT64_FORMAT, users ? v->user_keys[i] : v->item_keys[i]);
@@ -238,6 +240,7 @@ emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const AffModelView *v, bool users
 	int64		n = aff_topk_finish(t);
 	int64		r;
 
+	AFF_ASSERT(n >= 0 && n <= t->k);
 	for (r = 0; r < n; r++)
 	{
 		Datum		values[3];
