@@ -242,6 +242,7 @@ aff_batch_run(AffBatch *b, const int32_t *users, int64_t n, AffPollFn poll,
 	return AFF_OK;
 }
 
+/* Release the batch's buffers (through the allocator that gave them). */
 void
 aff_batch_free(AffBatch *b, const AffAllocator *a)
 {

@@ -39,19 +39,24 @@ user_scores(const AffModelView *v, int64 u, float *scores)
 
 /*
  * The best k of scores over the items that flt lets through, emitted as
- * (key, score, rank) rows; a considered score that is not finite is an
- * error naming it and request (whose scores they are).
+ * (key, score, rank) rows.  A considered score that is not finite is an
+ * error naming it and whose scores they are: request, followed by the key
+ * of index who (a user when who_users) when who >= 0.
  */
 static void
 emit_best(FunctionCallInfo fcinfo, const AffModelView *v, const float *scores,
-		  const AffItemFilter *flt, int64 k, bool users, const char *request)
+		  const AffItemFilter *flt, int64 k, bool users, const char *request,
+		  int64 who, bool who_users)
 {
 	AffTopK		t;
+	int64		bad;
 
 	aff_topk_init(&t, palloc(sizeof(AffScored) * Max(k, 1)), k);
-	check_finite_scores(v, users,
-						aff_topk_scores(scores, users ? v->h->n_users : v->h->n_items, flt, &t),
-						request);
+	bad = aff_topk_scores(scores, users ? v->h->n_users : v->h->n_items, flt, &t);
+	if (bad >= 0)
+		check_finite_scores(v, users, bad,
+							who < 0 ? request :
+							psprintf("%s %s", request, key_cstring(v, who_users, who)));
 	emit_topk(fcinfo, &t, v, users);
 }
 
@@ -153,8 +158,7 @@ top_items(PG_FUNCTION_ARGS)
 		meth->candidate_scores(&s, u, flt.cand, flt.n_cand, scores);
 	else
 		meth->user_scores(&s, u, scores);
-	emit_best(fcinfo, v, scores, &flt, k, false,
-			  u < 0 ? "an unknown user" : psprintf("user %s", key_cstring(v, true, u)));
+	emit_best(fcinfo, v, scores, &flt, k, false, u < 0 ? "an unknown user" : "user", u, true);
 	return (Datum) 0;
 }
 
@@ -324,7 +328,7 @@ top_items_basket(PG_FUNCTION_ARGS)
 		serve_context(e, &s, &a, SERVE_GRAM);
 		serve_check(meth->basket_scores(&s, idx, w, n, scores, &err), &err);
 	}
-	emit_best(fcinfo, v, scores, &flt, k, false, "the basket");
+	emit_best(fcinfo, v, scores, &flt, k, false, "the basket", -1, false);
 	return (Datum) 0;
 }
 
@@ -370,8 +374,7 @@ items_like(PG_FUNCTION_ARGS)
 	skip = palloc(v->h->n_items);
 	meth->item_row(&s, it, sims, skip);
 	flt.skip = skip;
-	emit_best(fcinfo, v, sims, &flt, k, false,
-			  psprintf("the items like item %s", key_cstring(v, false, it)));
+	emit_best(fcinfo, v, sims, &flt, k, false, "the items like item", it, false);
 	return (Datum) 0;
 }
 
@@ -415,8 +418,7 @@ users_like(PG_FUNCTION_ARGS)
 	skip[u] = 1;
 	memset(&flt, 0, sizeof(flt));
 	flt.skip = skip;
-	emit_best(fcinfo, v, sims, &flt, k, true,
-			  psprintf("the users like user %s", key_cstring(v, true, u)));
+	emit_best(fcinfo, v, sims, &flt, k, true, "the users like user", u, true);
 	return (Datum) 0;
 }
 
