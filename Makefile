@@ -53,7 +53,16 @@ PG_CPPFLAGS = $(BLAS_CFLAGS) -DAFFINITY_VERSION=\"$(EXTVERSION)\"
 PG_CFLAGS = -std=gnu11 -O3 -pthread -fopenmp-simd -fvisibility=hidden
 SHLIB_LINK = $(BLAS_LIBS) -pthread -lm
 
-EXTRA_CLEAN = results regression.diffs regression.out
+# make AFF_ASSERTS=1: check the stated preconditions (AFF_ASSERT) in the
+# engine and the binding; a failed one aborts the backend with its condition
+ifdef AFF_ASSERTS
+PG_CPPFLAGS += -DAFF_ASSERTS
+endif
+# the objects are rebuilt when the flag changes (.build-flags records it)
+BUILD_FLAGS := AFF_ASSERTS=$(AFF_ASSERTS)
+$(shell echo '$(BUILD_FLAGS)' | cmp -s - .build-flags || echo '$(BUILD_FLAGS)' >.build-flags)
+
+EXTRA_CLEAN = results regression.diffs regression.out .build-flags
 
 # no LLVM bitcode: the JIT gains nothing here and it would need clang
 override with_llvm = no
@@ -63,4 +72,4 @@ PGXS := $(shell $(PG_CONFIG) --pgxs)
 include $(PGXS)
 
 # PGXS does not track header dependencies: rebuild every object when a header changes
-$(OBJS): $(wildcard src/core/*.h src/pg/*.h)
+$(OBJS): $(wildcard src/core/*.h src/pg/*.h) .build-flags

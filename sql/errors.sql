@@ -88,3 +88,22 @@ FROM (VALUES (1::bigint, 1::bigint, 1::real), (2, 1, 1e30), (2, 2, 1)) v(u, i, w
 SET affinity.alpha = 1e9;
 SELECT affinity.fit(user_id, item_id, weight) FROM err_buys;
 RESET affinity.alpha;
+-- basket weights whose sum is beyond the range of real are refused, naming
+-- the item (3e38 + 3e38 was an infinite weight, its scores NaN, ranked in
+-- an arbitrary order); one weight of 3e38 is a real and is served
+SELECT t.* FROM err_model, affinity.top_items(model, ARRAY[2, 2]::bigint[], 3,
+       weights => ARRAY[3e38, 3e38]::real[]) t;
+SELECT count(*) FROM err_model, affinity.top_items(model, ARRAY[2]::bigint[], 3,
+       weights => ARRAY[3e38]::real[]) t;
+-- a score row that comes out non-finite is refused, not ranked: linear
+-- confidence with alpha 1e6 turns a basket weight of 1e33 into a confidence
+-- beyond the range of real
+CREATE TABLE err_linear AS
+SELECT affinity.fit(user_id, item_id, weight,
+       '{"factors": 2, "iterations": 2, "confidence": "linear", "alpha": 1e6}') AS model
+FROM err_buys;
+SELECT t.* FROM err_linear, affinity.top_items(model, ARRAY[2, 3]::bigint[], 3,
+       weights => ARRAY[1e33, 1]::real[]) t;
+SELECT count(*) FROM err_linear, affinity.top_items(model, ARRAY[2, 3]::bigint[], 3,
+       weights => ARRAY[1e5, 1]::real[]) t;
+DROP TABLE err_linear;

@@ -1,5 +1,6 @@
 #!/usr/bin/env bash
-# tests/check_fuzz.sh: fuzz the model validator (aff_model_validate) for a bounded time.
+# tests/check_fuzz.sh: fuzz the model validator (aff_model_validate) and the serving kernels
+# it lets models through to, for a bounded time.
 #
 # Builds tests/fuzz/fuzz_model.c with clang's libFuzzer, AddressSanitizer and
 # UndefinedBehaviorSanitizer (the engine's sources compiled as they are, outside the server), builds a seed corpus with tests/fuzz/seeds.py (models fitted by the extension

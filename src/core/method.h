@@ -128,7 +128,7 @@ typedef struct AffFitContext
 
 /*
  * A model as serving sees it: the view, plus the derived data the method
- * asked for (computed by aff_serve_gram / aff_serve_norms, kept by the
+ * asked for (computed by aff_gram / aff_row_norms, kept by the
  * caller's cache), plus an allocator for per-call scratch (NULL on worker
  * threads, where only user_scores runs).
  */

@@ -13,6 +13,9 @@
 #include "serve.h"
 #include "parallel.h"
 
+#include <cblas.h>
+
+#include <math.h>
 #include <string.h>
 
 /* Users per block of the batch at most, and scores per thread at most. */
@@ -29,15 +32,17 @@ offer(AffTopK *t, float score, int32_t i)
 
 /*
  * Offer scores[j] to t for every item j that flt lets through (see
- * AffItemFilter), in ascending order.  The caller finishes t.
+ * AffItemFilter), in ascending order.  The caller finishes t.  Returns the
+ * first such j whose score is not finite (not offered), or -1.
  */
-void
+int64_t
 aff_topk_scores(const float *scores, int64_t n_items, const AffItemFilter *flt,
 				AffTopK *t)
 {
 	const int32_t *seen = flt->seen;
 	const int32_t *seen_end = seen ? seen + flt->n_seen : NULL;
 	int64_t		n = flt->cand ? flt->n_cand : n_items;
+	int64_t		bad = -1;
 	int64_t		r;
 
 	AFF_ASSERT(t->k >= 0);
@@ -56,8 +61,15 @@ aff_topk_scores(const float *scores, int64_t n_items, const AffItemFilter *flt,
 		}
 		if (flt->skip && flt->skip[i])
 			continue;
+		if (!isfinite(scores[i]))
+		{
+			if (bad < 0)
+				bad = i;
+			continue;
+		}
 		offer(t, scores[i], i);
 	}
+	return bad;
 }
 
 /* a . b in float, summed in index order (bit-stable across callers). */
@@ -70,6 +82,20 @@ aff_dot_f(const float *a, const float *b, int f)
 	for (k = 0; k < f; k++)
 		s += a[k] * b[k];
 	return s;
+}
+
+/*
+ * norms[r] = |F_r| (Euclidean) for the n rows of F (f floats each): the
+ * norms aff_cosine_row divides by, computed once per cached model.
+ */
+void
+aff_row_norms(const float *F, int64_t n, int f, float *norms)
+{
+	int64_t		r;
+
+	AFF_ASSERT(n >= 0 && f >= 1);
+	for (r = 0; r < n; r++)
+		norms[r] = cblas_snrm2(f, F + (size_t) r * f, 1);
 }
 
 /*
@@ -95,7 +121,7 @@ aff_cosine_row(const float *F, const float *norms, int64_t n, int f, int64_t r,
 /* The best k of one user's score row into out, with the batch's filter. */
 static void
 batch_select(const AffBatch *b, int32_t u, const float *row, AffScored *heap,
-			 AffScored *out, int64_t *kept)
+			 AffScored *out, int64_t *kept, int64_t *bad)
 {
 	const AffModelView *v = b->s->v;
 	AffItemFilter flt = {b->exclude, NULL, 0, b->cand, b->n_cand};
@@ -107,7 +133,7 @@ batch_select(const AffBatch *b, int32_t u, const float *row, AffScored *heap,
 		flt.n_seen = v->seen_ptr[u + 1] - v->seen_ptr[u];
 	}
 	aff_topk_init(&t, heap, b->k);
-	aff_topk_scores(row, v->h->n_items, &flt, &t);
+	*bad = aff_topk_scores(row, v->h->n_items, &flt, &t);
 	*kept = aff_topk_finish(&t);
 	memcpy(out, heap, sizeof(AffScored) * *kept);
 }
@@ -133,7 +159,7 @@ batch_block(void *arg, int thread_no, int64_t block_no, int64_t begin, int64_t e
 			b->meth->user_scores(s, b->users[r], sc + (size_t) (r - begin) * m);
 	for (r = begin; r < end; r++)
 		batch_select(b, b->users[r], sc + (size_t) (r - begin) * m, heap,
-					 b->out + (size_t) r * b->k, &b->kept[r]);
+					 b->out + (size_t) r * b->k, &b->kept[r], &b->bad[r]);
 }
 
 /*
@@ -179,7 +205,8 @@ aff_batch_init(AffBatch *b, const AffServe *s, int64_t k, bool exclude_seen,
 	b->heaps = aff_alloc_array(a, n_heaps, sizeof(AffScored));
 	b->out = aff_alloc_array(a, n_out, sizeof(AffScored));
 	b->kept = aff_alloc_array(a, (size_t) chunk, sizeof(int64_t));
-	if (!b->work || !b->scores || !b->heaps || !b->out || !b->kept)
+	b->bad = aff_alloc_array(a, (size_t) chunk, sizeof(int64_t));
+	if (!b->work || !b->scores || !b->heaps || !b->out || !b->kept || !b->bad)
 	{
 		aff_batch_free(b, a);
 		return aff_fail(err, AFF_ERR_NOMEM, "out of memory for the batch's buffers");
@@ -187,17 +214,35 @@ aff_batch_init(AffBatch *b, const AffServe *s, int64_t k, bool exclude_seen,
 	return AFF_OK;
 }
 
-/* The top k of users[0 .. n) (n <= chunk) into b->out and b->kept. */
+/*
+ * The top k of users[0 .. n) (n <= chunk) into b->out and b->kept; fails
+ * with AFF_ERR_NUMERIC (bad_user, bad_item set) when a considered score of
+ * one of them is not finite.
+ */
 AffStatus
 aff_batch_run(AffBatch *b, const int32_t *users, int64_t n, AffPollFn poll,
 			  void *poll_arg, AffError *err)
 {
+	AffStatus	st;
+	int64_t		r;
+
 	AFF_ASSERT(n >= 0 && n <= b->chunk);
 	b->users = users;
-	return aff_parallel_for(b->threads, n, b->block, batch_block, b, poll,
-							poll_arg, err);
+	st = aff_parallel_for(b->threads, n, b->block, batch_block, b, poll,
+						  poll_arg, err);
+	if (st != AFF_OK)
+		return st;
+	for (r = 0; r < n; r++)
+		if (b->bad[r] >= 0)
+		{
+			b->bad_user = users[r];
+			b->bad_item = b->bad[r];
+			return aff_fail(err, AFF_ERR_NUMERIC, "a score is not finite");
+		}
+	return AFF_OK;
 }
 
+/* Release the batch's buffers (through the allocator that gave them). */
 void
 aff_batch_free(AffBatch *b, const AffAllocator *a)
 {
@@ -206,7 +251,8 @@ aff_batch_free(AffBatch *b, const AffAllocator *a)
 	aff_release(a, b->heaps);
 	aff_release(a, b->out);
 	aff_release(a, b->kept);
+	aff_release(a, b->bad);
 	b->work = b->scores = NULL;
 	b->heaps = b->out = NULL;
-	b->kept = NULL;
+	b->kept = b->bad = NULL;
 }

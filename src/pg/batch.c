@@ -29,6 +29,7 @@ emit_chunk(FunctionCallInfo fcinfo, const AffModelView *v, const int32 *users,
 	int64		r;
 	int64		j;
 
+	AFF_ASSERT(n >= 0 && n <= b->chunk);
 	for (r = 0; r < n; r++)
 		for (j = 0; j < b->kept[r]; j++)
 		{
@@ -57,6 +58,7 @@ affinity_top_items_for_all(PG_FUNCTION_ARGS)
 	AffAllocator a = context_allocator(CurrentMemoryContext);
 	AffBatch	b;
 	AffError	err;
+	AffStatus	st;
 	int32	   *users;
 	int			n_users;
 	int64		k;
@@ -92,7 +94,11 @@ affinity_top_items_for_all(PG_FUNCTION_ARGS)
 		int64		n = Min(b.chunk, n_users - c);
 
 		CHECK_FOR_INTERRUPTS();
-		engine_check(aff_batch_run(&b, users + c, n, engine_poll, NULL, &err), &err);
+		st = aff_batch_run(&b, users + c, n, engine_poll, NULL, &err);
+		if (st == AFF_ERR_NUMERIC)
+			check_finite_scores(&v, false, b.bad_item,
+								psprintf("user %s", key_cstring(&v, true, b.bad_user)));
+		engine_check(st, &err);
 		emit_chunk(fcinfo, &v, users + c, n, &b);
 	}
 	return (Datum) 0;

@@ -47,6 +47,7 @@
 #include "utils/memutils.h"
 
 #include "text_keys.h"
+#include "../core/serve.h"
 
 /*
  * A held-out pair: each side a bigint key or the arena offset of a text key
@@ -570,29 +571,26 @@ score_user(const AffModelView *v, int64 u, int64 k, const uint8 *rel, int64 n_re
 		   float *scores, uint8 *shown, Sums *s)
 {
 	AffTopK		t;
+	AffItemFilter flt;
 	int64		kk = Min(k, v->h->n_items);
 	AffScored  *heap = palloc_extended(sizeof(AffScored) * Max(kk, 1), MCXT_ALLOC_HUGE);
-	const int32 *seen = v->seen_items + v->seen_ptr[u];
-	const int32 *seen_end = v->seen_items + v->seen_ptr[u + 1];
 	double		dcg = 0;
 	double		idcg = 0;
 	double		ap = 0;
 	int64		hits = 0;
 	int64		n;
 	int64		r;
-	int32		i;
 
+	AFF_ASSERT(u >= 0 && u < v->h->n_users && k >= 1);
+	/* the user's unseen items, through the engine's top-k kernel */
 	user_scores(v, u, scores);
+	memset(&flt, 0, sizeof(flt));
+	flt.seen = v->seen_items + v->seen_ptr[u];
+	flt.n_seen = v->seen_ptr[u + 1] - v->seen_ptr[u];
 	aff_topk_init(&t, heap, kk);
-	for (i = 0; i < (int32) v->h->n_items; i++)
-	{
-		if (seen < seen_end && *seen == i)
-		{
-			seen++;
-			continue;
-		}
-		aff_topk_push(&t, scores[i], i);
-	}
+	r = aff_topk_scores(scores, v->h->n_items, &flt, &t);
+	if (r >= 0)
+		check_finite_scores(v, false, r, psprintf("user %s", key_cstring(v, true, u)));
 	n = aff_topk_finish(&t);
 	for (r = 0; r < n; r++)
 	{

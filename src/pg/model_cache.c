@@ -32,11 +32,12 @@
  */
 #include "affinity_pg.h"
 
-#include <cblas.h>
 #include <math.h>
 
 #include "access/detoast.h"
 #include "utils/memutils.h"
+
+#include "../core/serve.h"
 
 #include "../core/als.h"
 #include "../core/digest.h"
@@ -323,10 +324,8 @@ norms_of(CachedModel *e, const float *F, int64 n)
 {
 	int			f = e->view.h->factors;
 	float	   *out = MemoryContextAllocHuge(e->cxt, sizeof(float) * n);
-	int64		i;
 
-	for (i = 0; i < n; i++)
-		out[i] = cblas_snrm2(f, F + (size_t) i * f, 1);
+	aff_row_norms(F, n, f, out);
 	e->bytes += sizeof(float) * n;
 	cache_bytes += sizeof(float) * n;
 	return out;

@@ -13,6 +13,7 @@
  */
 #include "serving_common.h"
 
+#include <float.h>
 #include <math.h>
 
 #include "catalog/pg_type.h"
@@ -38,16 +39,24 @@ user_scores(const AffModelView *v, int64 u, float *scores)
 
 /*
  * The best k of scores over the items that flt lets through, emitted as
- * (key, score, rank) rows.
+ * (key, score, rank) rows.  A considered score that is not finite is an
+ * error naming it and whose scores they are: request, followed by the key
+ * of index who (a user when who_users) when who >= 0.
  */
 static void
 emit_best(FunctionCallInfo fcinfo, const AffModelView *v, const float *scores,
-		  const AffItemFilter *flt, int64 k, bool users)
+		  const AffItemFilter *flt, int64 k, bool users, const char *request,
+		  int64 who, bool who_users)
 {
 	AffTopK		t;
+	int64		bad;
 
 	aff_topk_init(&t, palloc(sizeof(AffScored) * Max(k, 1)), k);
-	aff_topk_scores(scores, users ? v->h->n_users : v->h->n_items, flt, &t);
+	bad = aff_topk_scores(scores, users ? v->h->n_users : v->h->n_items, flt, &t);
+	if (bad >= 0)
+		check_finite_scores(v, users, bad,
+							who < 0 ? request :
+							psprintf("%s %s", request, key_cstring(v, who_users, who)));
 	emit_topk(fcinfo, &t, v, users);
 }
 
@@ -72,6 +81,19 @@ mask_items(FunctionCallInfo fcinfo, int argno, const AffModelView *v, uint8 *ski
 	idx = array_key_indices(fcinfo, argno, v, false, &n);
 	for (i = 0; i < n; i++)
 		skip[idx[i]] = 1;
+}
+
+/* The candidate list of argument argno (when not NULL) into flt. */
+static void
+candidate_items(FunctionCallInfo fcinfo, int argno, const AffModelView *v,
+				AffItemFilter *flt)
+{
+	int			n = 0;
+
+	if (PG_ARGISNULL(argno))
+		return;
+	flt->cand = array_key_indices(fcinfo, argno, v, false, &n);
+	flt->n_cand = n;
 }
 
 static float *
@@ -99,7 +121,6 @@ affinity_top_items(PG_FUNCTION_ARGS)
 	int64		u;
 	uint8	   *skip;
 	float	   *scores;
-	int			n_cand = 0;
 
 	materialize(fcinfo);
 	if (PG_ARGISNULL(0) || PG_ARGISNULL(1))
@@ -124,11 +145,7 @@ affinity_top_items(PG_FUNCTION_ARGS)
 	skip = palloc0(v->h->n_items);
 	mask_items(fcinfo, 4, v, skip);
 	flt.skip = skip;
-	if (!PG_ARGISNULL(5))
-	{
-		flt.cand = array_key_indices(fcinfo, 5, v, false, &n_cand);
-		flt.n_cand = n_cand;
-	}
+	candidate_items(fcinfo, 5, v, &flt);
 
 	scores = alloc_scores(v);
 	memset(&s, 0, sizeof(s));
@@ -141,7 +158,7 @@ affinity_top_items(PG_FUNCTION_ARGS)
 		meth->candidate_scores(&s, u, flt.cand, flt.n_cand, scores);
 	else
 		meth->user_scores(&s, u, scores);
-	emit_best(fcinfo, v, scores, &flt, k, false);
+	emit_best(fcinfo, v, scores, &flt, k, false, u < 0 ? "an unknown user" : "user", u, true);
 	return (Datum) 0;
 }
 
@@ -162,7 +179,7 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 	Datum	   *we = NULL;
 	bool	   *wn = NULL;
 	int			nw = 0;
-	float	   *acc = NULL;
+	double	   *acc = NULL;
 	int32	   *idx;
 	float	   *w;
 	int			n = 0;
@@ -188,7 +205,7 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 					 errmsg("weights must have one entry per basket item"),
 					 errdetail("The basket has %d items and weights has %d entries.", nb, nw)));
 	}
-	acc = palloc0(sizeof(float) * v->h->n_items);
+	acc = palloc_extended(sizeof(double) * v->h->n_items, MCXT_ALLOC_HUGE | MCXT_ALLOC_ZERO);
 	idx = palloc(sizeof(int32) * (nb + 1));
 	w = palloc(sizeof(float) * (nb + 1));
 	for (i = 0; i < nb; i++)
@@ -219,7 +236,15 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 			continue;
 		if (acc[j] == 0)
 			idx[n++] = (int32) j;
+		/* summed in double: a sum beyond the range of real is refused */
 		acc[j] += wi;
+		if (acc[j] > FLT_MAX)
+			ereport(ERROR,
+					(errcode(ERRCODE_NUMERIC_VALUE_OUT_OF_RANGE),
+					 errmsg("basket weights add up beyond the range of real"),
+					 errdetail("The weights of basket item %s add up to %g at element %d; the largest real is %g.",
+							   key_cstring(v, false, j), acc[j], i + 1, (double) FLT_MAX),
+					 errhint("Give each item once with its total weight, scaled down.")));
 	}
 	/* ascending indices, as the engine's training lists are */
 	for (i = 1; i < n; i++)
@@ -234,8 +259,13 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 		}
 		idx[p + 1] = t;
 	}
+	AFF_ASSERT(n <= nb);
 	for (i = 0; i < n; i++)
-		w[i] = acc[idx[i]];
+	{
+		AFF_ASSERT(i == 0 || idx[i - 1] < idx[i]);
+		AFF_ASSERT(acc[idx[i]] > 0 && acc[idx[i]] <= FLT_MAX);
+		w[i] = (float) acc[idx[i]];
+	}
 	pfree(acc);
 	*idx_out = idx;
 	*w_out = w;
@@ -265,7 +295,6 @@ affinity_top_items_basket(PG_FUNCTION_ARGS)
 	float	   *w;
 	int			n;
 	uint8	   *skip;
-	int			n_cand = 0;
 	float	   *scores;
 	int			i;
 
@@ -289,11 +318,7 @@ affinity_top_items_basket(PG_FUNCTION_ARGS)
 	mask_items(fcinfo, 5, v, skip);
 	memset(&flt, 0, sizeof(flt));
 	flt.skip = skip;
-	if (!PG_ARGISNULL(6))
-	{
-		flt.cand = array_key_indices(fcinfo, 6, v, false, &n_cand);
-		flt.n_cand = n_cand;
-	}
+	candidate_items(fcinfo, 6, v, &flt);
 
 	scores = alloc_scores(v);
 	if (n == 0)
@@ -303,7 +328,7 @@ affinity_top_items_basket(PG_FUNCTION_ARGS)
 		serve_context(e, &s, &a, SERVE_GRAM);
 		serve_check(meth->basket_scores(&s, idx, w, n, scores, &err), &err);
 	}
-	emit_best(fcinfo, v, scores, &flt, k, false);
+	emit_best(fcinfo, v, scores, &flt, k, false, "the basket", -1, false);
 	return (Datum) 0;
 }
 
@@ -325,7 +350,6 @@ affinity_items_like(PG_FUNCTION_ARGS)
 	AffItemFilter flt;
 	int64		k;
 	int64		it;
-	int			n_cand = 0;
 	float	   *sims;
 	uint8	   *skip;
 
@@ -343,18 +367,14 @@ affinity_items_like(PG_FUNCTION_ARGS)
 	if (it < 0 || k == 0)
 		return (Datum) 0;
 	memset(&flt, 0, sizeof(flt));
-	if (!PG_ARGISNULL(3))
-	{
-		flt.cand = array_key_indices(fcinfo, 3, v, false, &n_cand);
-		flt.n_cand = n_cand;
-	}
+	candidate_items(fcinfo, 3, v, &flt);
 
 	serve_context(e, &s, &a, SERVE_ITEM_NORMS);
 	sims = alloc_scores(v);
 	skip = palloc(v->h->n_items);
 	meth->item_row(&s, it, sims, skip);
 	flt.skip = skip;
-	emit_best(fcinfo, v, sims, &flt, k, false);
+	emit_best(fcinfo, v, sims, &flt, k, false, "the items like item", it, false);
 	return (Datum) 0;
 }
 
@@ -398,7 +418,7 @@ affinity_users_like(PG_FUNCTION_ARGS)
 	skip[u] = 1;
 	memset(&flt, 0, sizeof(flt));
 	flt.skip = skip;
-	emit_best(fcinfo, v, sims, &flt, k, true);
+	emit_best(fcinfo, v, sims, &flt, k, true, "the users like user", u, true);
 	return (Datum) 0;
 }
 
@@ -474,7 +494,15 @@ affinity_reasons(PG_FUNCTION_ARGS)
 	/* heap over positions in the training list; they follow key order */
 	aff_topk_init(&t, palloc(sizeof(AffScored) * Max(Min(k, n), 1)), Min(k, n));
 	memset(&flt, 0, sizeof(flt));
-	aff_topk_scores(contrib, n, &flt, &t);
+	r = aff_topk_scores(contrib, n, &flt, &t);
+	if (r >= 0)
+		ereport(ERROR,
+				(errcode(ERRCODE_NUMERIC_VALUE_OUT_OF_RANGE),
+				 errmsg("a contribution is not finite"),
+				 errdetail("The contribution of item %s to the score of item %s for user %s overflowed the range of real.",
+						   key_cstring(v, false, v->seen_items[v->seen_ptr[u] + r]),
+						   key_cstring(v, false, i), key_cstring(v, true, u)),
+				 errhint("The model's vectors are too large for float arithmetic; refit with a larger regularization.")));
 	n = aff_topk_finish(&t);
 	for (r = 0; r < n; r++)
 	{

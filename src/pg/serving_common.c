@@ -139,9 +139,38 @@ key_arg_index(FunctionCallInfo fcinfo, int argno, const AffModelView *v, bool us
 Datum
 key_datum(const AffModelView *v, bool users, int64 i)
 {
+	AFF_ASSERT(i >= 0 && i < (users ? v->h->n_users : v->h->n_items));
 	if (v->h->key_type == AFF_KEYS_TEXT)
 		return text_key_datum(v, users, i);
 	return Int64GetDatum(users ? v->user_keys[i] : v->item_keys[i]);
+}
+
+/* The key of index i as text, for messages. */
+char *
+key_cstring(const AffModelView *v, bool users, int64 i)
+{
+	AFF_ASSERT(i >= 0 && i < (users ? v->h->n_users : v->h->n_items));
+	if (v->h->key_type == AFF_KEYS_TEXT)
+		return TextDatumGetCString(text_key_datum(v, users, i));
+	return psprintf(INT64_FORMAT, users ? v->user_keys[i] : v->item_keys[i]);
+}
+
+/*
+ * Refuse a ranking whose score of item (or user, when users) index bad is
+ * not finite (returned by aff_topk_scores or a failed batch); request
+ * says whose scores they are ("user 42", "the basket").  No-op for -1.
+ */
+void
+check_finite_scores(const AffModelView *v, bool users, int64 bad, const char *request)
+{
+	if (bad < 0)
+		return;
+	ereport(ERROR,
+			(errcode(ERRCODE_NUMERIC_VALUE_OUT_OF_RANGE),
+			 errmsg("a score is not finite"),
+			 errdetail("The score of %s %s for %s overflowed the range of real.",
+					   users ? "user" : "item", key_cstring(v, users, bad), request),
+			 errhint("The model's vectors or the request's weights are too large for float arithmetic; scale the weights down or refit with a larger regularization.")));
 }
 
 /* Column attno of the result must hold keys of the model's type. */
@@ -211,6 +240,7 @@ emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const AffModelView *v, bool users
 	int64		n = aff_topk_finish(t);
 	int64		r;
 
+	AFF_ASSERT(n >= 0 && n <= t->k);
 	for (r = 0; r < n; r++)
 	{
 		Datum		values[3];

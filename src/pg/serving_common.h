@@ -24,6 +24,9 @@ extern void emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const AffModelView *v
 extern int64 key_arg_index(FunctionCallInfo fcinfo, int argno, const AffModelView *v,
 						   bool users);
 extern Datum key_datum(const AffModelView *v, bool users, int64 i);
+extern char *key_cstring(const AffModelView *v, bool users, int64 i);
+extern void check_finite_scores(const AffModelView *v, bool users, int64 bad,
+								const char *request);
 extern void check_output_keys(FunctionCallInfo fcinfo, const AffModelView *v, int attno);
 extern ArrayType *vector_array(const float *x, int f);
 extern void user_scores(const AffModelView *v, int64 u, float *scores);
