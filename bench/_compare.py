@@ -241,22 +241,25 @@ def main():
     for name, v in FIG.items():
         o, n = B.median(v["old"]), B.median(v["new"])
         per = sorted(b / a for a, b in zip(v["old"], v["new"]) if a)
-        spread_o = (max(v["old"]) - min(v["old"])) / o if o else float("nan")
-        spread_n = (max(v["new"]) - min(v["new"])) / n if n else float("nan")
+        q1, q3 = (per[len(per) // 4], per[(3 * len(per)) // 4]) if per else (float("nan"),) * 2
         res["figures"][name] = {"unit": UNIT[name], "old": v["old"], "new": v["new"],
-                                "ratio": n / o if o else None, "per_rep_ratios": per}
+                                "ratio_of_medians": n / o if o else None,
+                                "median_per_rep_ratio": B.median(per), "per_rep_ratios": per}
         fmt = "%.3f" if UNIT[name] in ("s", "ms", "x", "share") else "%.0f"
         rows.append([name, UNIT[name], fmt % o, fmt % n, "%.3f" % (n / o if o else float("nan")),
-                     "%.2f-%.2f" % (per[0], per[-1]) if per else "-",
-                     "%.0f%% / %.0f%%" % (100 * spread_o, 100 * spread_n)])
+                     "%.3f" % B.median(per), "%.2f-%.2f" % (q1, q3),
+                     "%.2f-%.2f" % (per[0], per[-1]) if per else "-"])
     res["loadavg_end"] = B.loadavg()
     B.log("\n== old %s, new %s; %d repetitions, interleaved; load average %s at the start, %s at the end"
           % (res["builds"]["old"]["version"], res["builds"]["new"]["version"], args.reps,
              res["loadavg_start"], res["loadavg_end"]))
     B.log("OpenBLAS core: old %s, new %s"
           % (res["builds"]["old"]["runtime"].get("blas_core"), res["builds"]["new"]["runtime"].get("blas_core")))
+    B.log("new/old: of the medians; per repetition (old and new measured one right after the "
+          "other): median, interquartile range, whole range. Lower is better for s and ms, higher "
+          "for users/s and share.")
     B.log(B.md_table(["figure", "unit", "old (median)", "new (median)", "new/old",
-                      "per-rep new/old", "spread old / new"], rows))
+                      "per-rep new/old", "per-rep IQR", "per-rep range"], rows))
     B.write_json(args.json, res)
 
 
