@@ -1,6 +1,10 @@
 """The engine's SHA-256 and base64 codec, and the content digest of model values.
 
-1. src/core/digest.c, built outside the server with tests/digest/digest_driver.c:
+1. src/core/digest.c, built outside the server with tests/digest/digest_driver.c,
+   run twice: with the compression function the engine picks for this CPU
+   (the x86 SHA extensions when /proc/cpuinfo lists sha_ni, portable C
+   otherwise) and with the portable one forced (AFFINITY_SHA256_PORTABLE=1);
+   each run checks that it used the path it names, then:
    * SHA-256 of the examples of FIPS 180-4 (NIST's "abc", the 448-bit
      two-block message and one million "a"; the expected digests are the
      published ones, written here from memory and confirmed by hashlib);
@@ -48,15 +52,37 @@ def build_driver(tmp):
     return exe
 
 
+def cpu_has_sha():
+    """True when this is an x86-64 CPU whose flags list the SHA extensions."""
+    import platform
+    if platform.machine() not in ("x86_64", "AMD64"):
+        return False
+    try:
+        with open("/proc/cpuinfo") as f:
+            return any(line.startswith("flags") and "sha_ni" in line.split() for line in f)
+    except OSError:
+        return False
+
+
 class Driver:
-    def __init__(self, exe):
+    def __init__(self, exe, portable=False):
         self.exe = exe
-        self.requests = []
+        self.env = dict(os.environ)
+        self.env.pop("AFFINITY_SHA256_PORTABLE", None)
+        if portable:
+            self.env["AFFINITY_SHA256_PORTABLE"] = "1"
+
+    def implementation(self):
+        p = subprocess.run([self.exe, "--implementation"], stdout=subprocess.PIPE,
+                           env=self.env, universal_newlines=True)
+        if p.returncode != 0:
+            fail("digest driver --implementation exit %d" % p.returncode)
+        return p.stdout.strip()
 
     def run(self, ops):
         """ops: list of (op, bytes); returns the answers in order."""
         data = b"".join(op.encode() + struct.pack("<Q", len(b)) + b for op, b in ops)
-        p = subprocess.run([self.exe], input=data, stdout=subprocess.PIPE)
+        p = subprocess.run([self.exe], input=data, stdout=subprocess.PIPE, env=self.env)
         if p.returncode != 0:
             fail("digest driver exit %d" % p.returncode)
         out, pos, answers = p.stdout, 0, []
@@ -79,22 +105,23 @@ class Driver:
         return answers
 
 
-def check_sha(c, drv):
+def check_sha(c, drv, path):
     got = drv.run([("s", m) for m, _ in FIPS] + [("i", m) for m, _ in FIPS])
     for k, (m, want) in enumerate(FIPS):
         name = "%r" % m if len(m) < 60 else "one million 'a'"
         c.check(got[k].hex() == want and hashlib.sha256(m).hexdigest() == want,
-                "FIPS 180-4 example %s" % name, got[k].hex())
-        c.check(got[len(FIPS) + k].hex() == want, "FIPS 180-4 example %s, fed in pieces" % name)
+                "%s: FIPS 180-4 example %s" % (path, name), got[k].hex())
+        c.check(got[len(FIPS) + k].hex() == want,
+                "%s: FIPS 180-4 example %s, fed in pieces" % (path, name))
     rng = random.Random(180)
     msgs = [bytes(rng.getrandbits(8) for _ in range(n)) for n in range(301)]
     msgs += [os.urandom(n) for n in (4095, 65536 + 7, 3 * 1024 * 1024 + 13)]
     got = drv.run([("s", m) for m in msgs] + [("i", m) for m in msgs])
     bad = [len(m) for k, m in enumerate(msgs) if got[k] != hashlib.sha256(m).digest()]
     bad_i = [len(m) for k, m in enumerate(msgs) if got[len(msgs) + k] != hashlib.sha256(m).digest()]
-    c.check(not bad, "SHA-256 equals hashlib on %d random messages (0..300 bytes and up to 3 MB)"
-            % len(msgs), "differs at lengths %s" % bad[:10] if bad else "")
-    c.check(not bad_i, "SHA-256 fed in pieces equals hashlib on the same messages",
+    c.check(not bad, "%s: SHA-256 equals hashlib on %d random messages (0..300 bytes and up to 3 MB)"
+            % (path, len(msgs)), "differs at lengths %s" % bad[:10] if bad else "")
+    c.check(not bad_i, "%s: SHA-256 fed in pieces equals hashlib on the same messages" % path,
             "differs at lengths %s" % bad_i[:10] if bad_i else "")
 
 
@@ -172,8 +199,17 @@ def check_server(c, cur):
 def main():
     c = Checker("check_digest")
     tmp = os.environ.get("AFFINITY_TEST_TMP") or "/tmp"
-    drv = Driver(build_driver(tmp))
-    check_sha(c, drv)
+    exe = build_driver(tmp)
+    drv = Driver(exe)
+    native = drv.implementation()
+    want = "sha-ni" if cpu_has_sha() else "portable"
+    c.check(native == want, "the engine picks the %s compression on this CPU" % want, native)
+    portable = Driver(exe, portable=True)
+    c.check(portable.implementation() == "portable",
+            "AFFINITY_SHA256_PORTABLE=1 makes the driver use the portable compression",
+            portable.implementation())
+    check_sha(c, drv, native)
+    check_sha(c, portable, "portable (forced)")
     check_base64(c, drv)
     conn = connect()
     check_server(c, conn.cursor())

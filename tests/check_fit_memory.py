@@ -11,9 +11,10 @@ are already resident; the growth measured is the fit's own.
    PROGRAM_LIMIT_EXCEEDED (the detail names the text keys) before the
    backend grows by more than LIMIT_SLACK over the limit.  Version 1.1
    counted no text: the fit passed and the backend grew by 573 MB.
-2. 3,000,000 bigint rows under a 32 MB limit: refused at the row that
-   takes the estimate over the limit, so the backend grows by at most the
-   limit plus LIMIT_SLACK (1.1 collected every row first: +100 MB).
+2. 3,000,000 bigint rows under a 32 MB limit: refused when the row array
+   next fills after the row that takes the estimate over the limit, so the
+   backend grows by at most the limit plus LIMIT_SLACK (1.1 collected every
+   row first: +100 MB).
 3. describe()'s peak_memory_bytes agrees with the measured growth of a
    serial fit of 2,000,000 rows (bigint, popularity and implicit_als) and
    of 400,000 rows with text keys, within PEAK_RTOL of the measurement plus

@@ -10,6 +10,7 @@
  */
 #include "digest.h"
 
+#include <stdatomic.h>
 #include <string.h>
 
 #include "model_format.h"
@@ -28,63 +29,221 @@ static const uint32_t K256[64] = {
 
 #define ROTR(x, n)	(((x) >> (n)) | ((x) << (32 - (n))))
 
-/* Process one 64-byte block (FIPS 180-4, 6.2.2). */
+/* Compress nblocks consecutive 64-byte blocks into the state st[0..7] = a..h. */
+typedef void (*Sha256BlocksFn) (uint32_t *st, const uint8_t *p, size_t nblocks);
+
+/* Process 64-byte blocks one after the other in portable C (FIPS 180-4, 6.2.2). */
 static void
-sha256_block(uint32_t *st, const uint8_t *p)
+sha256_blocks_portable(uint32_t *st, const uint8_t *p, size_t nblocks)
 {
-	uint32_t	w[64];
-	uint32_t	a,
+	for (; nblocks > 0; nblocks--, p += 64)
+	{
+		uint32_t	w[64];
+		uint32_t	a,
+					b,
+					c,
+					d,
+					e,
+					f,
+					g,
+					h;
+		int			t;
+
+		for (t = 0; t < 16; t++)
+			w[t] = ((uint32_t) p[4 * t] << 24) | ((uint32_t) p[4 * t + 1] << 16) |
+				((uint32_t) p[4 * t + 2] << 8) | (uint32_t) p[4 * t + 3];
+		for (t = 16; t < 64; t++)
+		{
+			uint32_t	s0 = ROTR(w[t - 15], 7) ^ ROTR(w[t - 15], 18) ^ (w[t - 15] >> 3);
+			uint32_t	s1 = ROTR(w[t - 2], 17) ^ ROTR(w[t - 2], 19) ^ (w[t - 2] >> 10);
+
+			w[t] = w[t - 16] + s0 + w[t - 7] + s1;
+		}
+		a = st[0];
+		b = st[1];
+		c = st[2];
+		d = st[3];
+		e = st[4];
+		f = st[5];
+		g = st[6];
+		h = st[7];
+		for (t = 0; t < 64; t++)
+		{
+			uint32_t	t1 = h + (ROTR(e, 6) ^ ROTR(e, 11) ^ ROTR(e, 25)) +
+				((e & f) ^ (~e & g)) + K256[t] + w[t];
+			uint32_t	t2 = (ROTR(a, 2) ^ ROTR(a, 13) ^ ROTR(a, 22)) +
+				((a & b) ^ (a & c) ^ (b & c));
+
+			h = g;
+			g = f;
+			f = e;
+			e = d + t1;
+			d = c;
+			c = b;
+			b = a;
+			a = t1 + t2;
+		}
+		st[0] += a;
+		st[1] += b;
+		st[2] += c;
+		st[3] += d;
+		st[4] += e;
+		st[5] += f;
+		st[6] += g;
+		st[7] += h;
+	}
+}
+
+#if defined(__x86_64__) && (defined(__GNUC__) || defined(__clang__))
+#define AFF_SHA256_HAVE_SHANI 1
+#include <cpuid.h>
+#include <immintrin.h>
+
+/*
+ * The same compression with the x86 SHA extensions.  Only this function is
+ * compiled for them (the rest of the file keeps the baseline flags); it is
+ * called only when the CPU reports them (sha256_choose).
+ *
+ * The instructions keep the eight working variables in two registers,
+ * ABEF = {a, b, e, f} and CDGH = {c, d, g, h}, a in the highest 32 bits and
+ * f (h) in the lowest.  sha256rnds2(CDGH, ABEF, WK) performs two rounds
+ * with W[t] + K[t] in bits 0..31 and W[t+1] + K[t+1] in bits 32..63 of WK
+ * and returns the new ABEF; the new CDGH is the old ABEF, so two calls with
+ * the registers' roles exchanged do four rounds.  The schedule of FIPS
+ * 180-4, 6.2.2 step 1, four words at a time: with M0..M3 holding
+ * W[t-16..t-13] .. W[t-4..t-1] (lowest lane the lowest index),
+ * sha256msg1(M0, M1) gives W[t-16+i] + sigma0(W[t-15+i]), adding
+ * W[t-7..t-4] (M3:M2 shifted by one word) supplies the third term, and
+ * sha256msg2(that, M3) adds sigma1(W[t-2+i]), taking W[t], W[t+1] it has
+ * just made for the last two lanes.
+ */
+__attribute__((target("sha,sse4.1")))
+static void
+sha256_blocks_shani(uint32_t *st, const uint8_t *p, size_t nblocks)
+{
+	/* pshufb mask: reverse the bytes of each 32-bit lane (big-endian words) */
+	const __m128i bswap = _mm_set_epi8(12, 13, 14, 15, 8, 9, 10, 11,
+									   4, 5, 6, 7, 0, 1, 2, 3);
+	__m128i		abef = _mm_set_epi32((int) st[0], (int) st[1], (int) st[4], (int) st[5]);
+	__m128i		cdgh = _mm_set_epi32((int) st[2], (int) st[3], (int) st[6], (int) st[7]);
+
+	for (; nblocks > 0; nblocks--, p += 64)
+	{
+		const __m128i abef0 = abef;
+		const __m128i cdgh0 = cdgh;
+		__m128i		m[4];
+		int			g;
+
+		for (g = 0; g < 4; g++)
+			m[g] = _mm_shuffle_epi8(_mm_loadu_si128((const __m128i *) (p + 16 * g)), bswap);
+		/* sixteen groups of four rounds: group g uses W[4g .. 4g+3] */
+#if defined(__GNUC__) && !defined(__clang__)
+#pragma GCC unroll 16
+#endif
+		for (g = 0; g < 16; g++)
+		{
+			__m128i		wk;
+
+			if (g >= 4)
+			{
+				__m128i		w0 = m[g & 3];	/* W[4g-16 .. 4g-13] */
+				__m128i		w1 = m[(g + 1) & 3];	/* W[4g-12 .. 4g-9] */
+				__m128i		w2 = m[(g + 2) & 3];	/* W[4g-8 .. 4g-5] */
+				__m128i		w3 = m[(g + 3) & 3];	/* W[4g-4 .. 4g-1] */
+				__m128i		x = _mm_sha256msg1_epu32(w0, w1);
+
+				x = _mm_add_epi32(x, _mm_alignr_epi8(w3, w2, 4));
+				m[g & 3] = _mm_sha256msg2_epu32(x, w3);
+			}
+			wk = _mm_add_epi32(m[g & 3], _mm_loadu_si128((const __m128i *) (K256 + 4 * g)));
+			cdgh = _mm_sha256rnds2_epu32(cdgh, abef, wk);	/* now ABEF */
+			wk = _mm_shuffle_epi32(wk, 0x0E);	/* lanes 2, 3 down to 0, 1 */
+			abef = _mm_sha256rnds2_epu32(abef, cdgh, wk);	/* ABEF; cdgh is CDGH */
+		}
+		abef = _mm_add_epi32(abef, abef0);
+		cdgh = _mm_add_epi32(cdgh, cdgh0);
+	}
+	st[0] = (uint32_t) _mm_extract_epi32(abef, 3);
+	st[1] = (uint32_t) _mm_extract_epi32(abef, 2);
+	st[4] = (uint32_t) _mm_extract_epi32(abef, 1);
+	st[5] = (uint32_t) _mm_extract_epi32(abef, 0);
+	st[2] = (uint32_t) _mm_extract_epi32(cdgh, 3);
+	st[3] = (uint32_t) _mm_extract_epi32(cdgh, 2);
+	st[6] = (uint32_t) _mm_extract_epi32(cdgh, 1);
+	st[7] = (uint32_t) _mm_extract_epi32(cdgh, 0);
+}
+#endif							/* x86-64 */
+
+/*
+ * The compression in use: NULL (static storage starts zeroed) until the
+ * first hash picks one.  Either
+ * choice is right, so two threads that choose at once store the same value;
+ * the relaxed atomic accesses only make that race a defined one.
+ */
+static _Atomic(Sha256BlocksFn) sha256_blocks_fn;
+
+/*
+ * The fastest compression this CPU runs.  The SHA extensions are asked of
+ * CPUID itself (leaf 7, EBX bit 29; SSSE3 and SSE4.1 are leaf 1, ECX bits
+ * 9 and 19), which every compiler's <cpuid.h> reaches, rather than through
+ * __builtin_cpu_supports, whose "sha" name older clang does not know.
+ */
+static Sha256BlocksFn
+sha256_choose(void)
+{
+#ifdef AFF_SHA256_HAVE_SHANI
+	unsigned int a,
 				b,
 				c,
-				d,
-				e,
-				f,
-				g,
-				h;
-	int			t;
+				d;
 
-	for (t = 0; t < 16; t++)
-		w[t] = ((uint32_t) p[4 * t] << 24) | ((uint32_t) p[4 * t + 1] << 16) |
-			((uint32_t) p[4 * t + 2] << 8) | (uint32_t) p[4 * t + 3];
-	for (t = 16; t < 64; t++)
+	if (__get_cpuid(1, &a, &b, &c, &d) && (c & (1u << 9)) && (c & (1u << 19)) &&
+		__get_cpuid_count(7, 0, &a, &b, &c, &d) && (b & (1u << 29)))
+		return sha256_blocks_shani;
+#endif
+	return sha256_blocks_portable;
+}
+
+/* Compress nblocks blocks with the chosen compression. */
+static void
+sha256_blocks(uint32_t *st, const uint8_t *p, size_t nblocks)
+{
+	Sha256BlocksFn fn = atomic_load_explicit(&sha256_blocks_fn, memory_order_relaxed);
+
+	if (fn == NULL)
 	{
-		uint32_t	s0 = ROTR(w[t - 15], 7) ^ ROTR(w[t - 15], 18) ^ (w[t - 15] >> 3);
-		uint32_t	s1 = ROTR(w[t - 2], 17) ^ ROTR(w[t - 2], 19) ^ (w[t - 2] >> 10);
-
-		w[t] = w[t - 16] + s0 + w[t - 7] + s1;
+		fn = sha256_choose();
+		atomic_store_explicit(&sha256_blocks_fn, fn, memory_order_relaxed);
 	}
-	a = st[0];
-	b = st[1];
-	c = st[2];
-	d = st[3];
-	e = st[4];
-	f = st[5];
-	g = st[6];
-	h = st[7];
-	for (t = 0; t < 64; t++)
-	{
-		uint32_t	t1 = h + (ROTR(e, 6) ^ ROTR(e, 11) ^ ROTR(e, 25)) +
-			((e & f) ^ (~e & g)) + K256[t] + w[t];
-		uint32_t	t2 = (ROTR(a, 2) ^ ROTR(a, 13) ^ ROTR(a, 22)) +
-			((a & b) ^ (a & c) ^ (b & c));
+	fn(st, p, nblocks);
+}
 
-		h = g;
-		g = f;
-		f = e;
-		e = d + t1;
-		d = c;
-		c = b;
-		b = a;
-		a = t1 + t2;
-	}
-	st[0] += a;
-	st[1] += b;
-	st[2] += c;
-	st[3] += d;
-	st[4] += e;
-	st[5] += f;
-	st[6] += g;
-	st[7] += h;
+/*
+ * Use the portable compression from now on (portable != 0) or go back to
+ * the fastest one; returns the name of the one in use.
+ */
+const char *
+aff_sha256_force_portable(int portable)
+{
+	atomic_store_explicit(&sha256_blocks_fn,
+						  portable ? sha256_blocks_portable : sha256_choose(),
+						  memory_order_relaxed);
+	return aff_sha256_implementation();
+}
+
+/* "sha-ni" or "portable": the compression the next hash will use. */
+const char *
+aff_sha256_implementation(void)
+{
+	Sha256BlocksFn fn = atomic_load_explicit(&sha256_blocks_fn, memory_order_relaxed);
+
+	if (fn == NULL)
+		fn = sha256_choose();
+#ifdef AFF_SHA256_HAVE_SHANI
+	if (fn == sha256_blocks_shani)
+		return "sha-ni";
+#endif
+	return "portable";
 }
 
 /* Start a hash with the initial value of FIPS 180-4, 5.3.3. */
@@ -120,14 +279,16 @@ aff_sha256_update(AffSha256 *s, const void *data, size_t len)
 		len -= take;
 		if (s->used < 64)
 			return;
-		sha256_block(s->state, s->block);
+		sha256_blocks(s->state, s->block, 1);
 		s->used = 0;
 	}
-	while (len >= 64)
+	if (len >= 64)
 	{
-		sha256_block(s->state, p);
-		p += 64;
-		len -= 64;
+		size_t		whole = len / 64;
+
+		sha256_blocks(s->state, p, whole);
+		p += whole * 64;
+		len -= whole * 64;
 	}
 	memcpy(s->block, p, len);
 	s->used = len;
@@ -144,13 +305,13 @@ aff_sha256_final(AffSha256 *s, uint8_t out[AFF_SHA256_BYTES])
 	if (s->used > 56)
 	{
 		memset(s->block + s->used, 0, 64 - s->used);
-		sha256_block(s->state, s->block);
+		sha256_blocks(s->state, s->block, 1);
 		s->used = 0;
 	}
 	memset(s->block + s->used, 0, 56 - s->used);
 	for (i = 0; i < 8; i++)
 		s->block[56 + i] = (uint8_t) (bits >> (56 - 8 * i));
-	sha256_block(s->state, s->block);
+	sha256_blocks(s->state, s->block, 1);
 	for (i = 0; i < 8; i++)
 	{
 		out[4 * i] = (uint8_t) (s->state[i] >> 24);

@@ -28,6 +28,18 @@ extern void aff_sha256_final(AffSha256 *s, uint8_t out[AFF_SHA256_BYTES]);
 extern void aff_sha256(const void *data, size_t len, uint8_t out[AFF_SHA256_BYTES]);
 
 /*
+ * The compression function is chosen at the first hash: the x86 SHA
+ * extensions when the CPU has them ("sha-ni"), portable C otherwise
+ * ("portable"); both give the same digests.  aff_sha256_implementation
+ * names the one in use; aff_sha256_force_portable(1) makes every later
+ * hash use the portable one (for tests and measurements; not while
+ * another thread hashes), aff_sha256_force_portable(0) restores the
+ * choice; it returns the name of the one now in use.
+ */
+extern const char *aff_sha256_implementation(void);
+extern const char *aff_sha256_force_portable(int portable);
+
+/*
  * The content digest of a model value of len bytes (len >= the header):
  * SHA-256 of every byte after the length word, with the checksum and the
  * content_digest fields taken as zero.

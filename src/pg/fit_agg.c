@@ -10,12 +10,14 @@
  * method and encodes the model.  It keeps the result in the state, because
  * PostgreSQL may call a final function more than once on one state.
  *
- * affinity.max_fit_memory is enforced as the rows arrive: every row
- * updates the estimate of what the final step will need (rows, matrix,
- * text keys as their dictionaries really hold them), and the fit stops at
- * the first row that takes it over the limit.  The peak stored in the model
- * is measured, not estimated: the bytes allocated in the state's context
- * and the fit's work context, sampled at every engine allocation.
+ * affinity.max_fit_memory is enforced as the rows arrive: whenever the
+ * state takes memory (its row array doubles, a text dictionary adds a
+ * text) the estimate of what the final step will need (rows, matrix, text
+ * keys as their dictionaries really hold them) is checked, so the fit stops
+ * by the first doubling of the rows after the one that takes it over the
+ * limit.  The peak stored in the model is measured, not estimated: the
+ * bytes allocated in the state's context and the fit's work context,
+ * sampled at every engine allocation.
  *
  * Text keys are hashed under a random key per state (text_keys.c); states
  * of parallel workers each have their own, so combine re-keys the other
@@ -179,9 +181,15 @@ fit_state_new(FunctionCallInfo fcinfo, MemoryContext aggcxt)
 }
 
 /*
- * Refuse the fit as soon as what the final step will need passes
+ * Refuse the fit when what the final step will need passes
  * affinity.max_fit_memory; the final step checks the same estimate, so a
  * fit refused here would have been refused there, only later and larger.
+ * Called where the state takes memory (before the row array is enlarged,
+ * after a text dictionary adds a text, after a combine), not for every
+ * row: the estimate only grows with the rows, so a fit over the limit is
+ * refused at the latest when its row array next doubles, while the array
+ * (24 bytes a row, against the estimate's 200 or more) stays far below the
+ * limit.
  */
 static inline void
 check_growing(const FitState *st)
@@ -197,13 +205,15 @@ static void
 add_row(FitState *st, int64 user, int64 item, float4 w)
 {
 	if (st->n_rows == st->cap_rows)
+	{
+		check_growing(st);
 		grow_rows(st);
+	}
 	st->rows[st->n_rows].user = user;
 	st->rows[st->n_rows].item = item;
 	st->rows[st->n_rows].weight = w;
 	st->rows[st->n_rows].pad = 0;
 	st->n_rows++;
-	check_growing(st);
 }
 
 /* A random non-zero 128-bit key from the server's strong random source. */
@@ -396,7 +406,10 @@ affinity_fit_text_transfn(PG_FUNCTION_ARGS)
 	}
 	MemoryContextSwitchTo(old);
 	if (text_dict_count(st->user_texts) + text_dict_count(st->item_texts) != texts)
+	{
 		count_text_memory(st);
+		check_growing(st);
+	}
 	add_row(st, uk, ik, w);
 	PG_RETURN_POINTER(st);
 }

@@ -8,6 +8,11 @@
  * length and that many bytes.  Answers: 's'/'i' the 32-byte digest; 'e' a
  * uint64 length and the text; 'd' an int64 result, a uint64 offset of the
  * bad character (when the result is -1) and the decoded bytes.
+ *
+ * With AFFINITY_SHA256_PORTABLE=1 in the environment every hash uses the
+ * portable compression function instead of the one chosen for the CPU.
+ * "digest_driver --implementation" prints the name of the compression it
+ * would use ("sha-ni" or "portable") and exits.
  */
 #include <stdio.h>
 #include <stdlib.h>
@@ -15,17 +20,27 @@
 
 #include "../../src/core/digest.h"
 
+/* Read exactly n bytes from stdin; 0 on a short read. */
 static int
 read_all(void *p, size_t n)
 {
 	return fread(p, 1, n, stdin) == n;
 }
 
+/* Read records from stdin and answer each on stdout (see above). */
 int
-main(void)
+main(int argc, char **argv)
 {
 	int			op;
+	const char *portable = getenv("AFFINITY_SHA256_PORTABLE");
 
+	if (portable != NULL && strcmp(portable, "1") == 0)
+		aff_sha256_force_portable(1);
+	if (argc == 2 && strcmp(argv[1], "--implementation") == 0)
+	{
+		printf("%s\n", aff_sha256_implementation());
+		return 0;
+	}
 	while ((op = getchar()) != EOF)
 	{
 		uint64_t	len;
