@@ -7,14 +7,16 @@
  *
  * Items are visited in ascending index order, so once the heap is full a
  * score not above its worst cannot enter (an equal score loses the tie to
- * the smaller index already kept) and the heap call is skipped; the result
- * is the same as pushing every item.
+ * the smaller index already kept) and the push is skipped, a block of
+ * such scores at a time where it can; the result is the same as pushing
+ * every item.
  */
 #include "serve.h"
 #include "parallel.h"
 
 #include <cblas.h>
 
+#include <float.h>
 #include <math.h>
 #include <string.h>
 
@@ -22,12 +24,96 @@
 #define BATCH_BLOCK_USERS	64
 #define BATCH_BLOCK_SCORES	(8 * 1024 * 1024)
 
-static inline void
-offer(AffTopK *t, float score, int32_t i)
+/* Scores per block of the skip test in topk_loop. */
+#define TOPK_SKIP_BLOCK		16
+
+/*
+ * The loop of aff_topk_scores, with the heap's state (entries kept, worst
+ * score) and the filter's fields in locals and the push inline.  Written
+ * once; the two calls of aff_topk_scores, with cand a constant NULL in one,
+ * let the compiler build it without the candidate indirection for the
+ * common case.
+ *
+ * worst is the score an item must beat to be looked at: the root's score
+ * once the heap is full (an equal score loses the tie to the smaller index
+ * already kept), -INFINITY while it is not, FLT_MAX when k = 0 (nothing is
+ * kept, but a non-finite score is still reported).  A finite score not
+ * above worst can neither enter nor be reported, whatever the filter says,
+ * so it is passed over before the filter is looked at; without a candidate
+ * list, a block of TOPK_SKIP_BLOCK such scores is passed over at once.
+ * Everything else takes the full path: seen list, mask, the finiteness
+ * check, the push.
+ */
+static inline __attribute__((always_inline)) int64_t
+topk_loop(const float *scores, int64_t n_items, const AffItemFilter *flt,
+		  AffTopK *t, const int32_t *cand)
 {
-	if (t->n == t->k && !(score > t->heap[0].score))
-		return;
-	aff_topk_push(t, score, i);
+	const uint8_t *skip = flt->skip;
+	const int32_t *seen = flt->seen;
+	const int32_t *seen_end = seen ? seen + flt->n_seen : NULL;
+	int64_t		n = cand ? flt->n_cand : n_items;
+	AffScored  *heap = t->heap;
+	int64_t		k = t->k;
+	int64_t		kept = t->n;
+	float		worst;
+	int64_t		bad = -1;
+	int64_t		r;
+
+	AFF_ASSERT(k >= 0 && kept >= 0 && kept <= k);
+	worst = kept < k ? -INFINITY : k > 0 ? heap[0].score : FLT_MAX;
+	for (r = 0; r < n; r += TOPK_SKIP_BLOCK)
+	{
+		int64_t		end = n - r < TOPK_SKIP_BLOCK ? n : r + TOPK_SKIP_BLOCK;
+		int64_t		q;
+
+		if (!cand && end - r == TOPK_SKIP_BLOCK)
+		{
+			const float *blk = scores + r;
+			int			pass = 1;
+
+			/* a vector compare with -fopenmp-simd; a NaN fails both tests */
+#pragma omp simd reduction(&:pass)
+			for (q = 0; q < TOPK_SKIP_BLOCK; q++)
+				pass &= (blk[q] <= worst) & (blk[q] > -INFINITY);
+			if (pass)
+				continue;
+		}
+		for (q = r; q < end; q++)
+		{
+			int32_t		i = cand ? cand[q] : (int32_t) q;
+			float		sc = scores[i];
+			AffScored	c;
+
+			AFF_ASSERT(i >= 0 && i < n_items);
+			AFF_ASSERT(q == 0 || !cand || cand[q - 1] < i);
+			if (sc <= worst && sc > -INFINITY)
+				continue;
+			if (seen)
+			{
+				while (seen < seen_end && *seen < i)
+					seen++;
+				if (seen < seen_end && *seen == i)
+					continue;
+			}
+			if (skip && skip[i])
+				continue;
+			if (!isfinite(sc))
+			{
+				if (bad < 0)
+					bad = i;
+				continue;
+			}
+			if (k == 0)
+				continue;		/* not reached: worst = FLT_MAX */
+			c.score = sc;
+			c.index = i;
+			aff_topk_offer(heap, k, &kept, c);
+			if (kept == k)
+				worst = heap[0].score;
+		}
+	}
+	t->n = kept;
+	return bad;
 }
 
 /*
@@ -39,37 +125,9 @@ int64_t
 aff_topk_scores(const float *scores, int64_t n_items, const AffItemFilter *flt,
 				AffTopK *t)
 {
-	const int32_t *seen = flt->seen;
-	const int32_t *seen_end = seen ? seen + flt->n_seen : NULL;
-	int64_t		n = flt->cand ? flt->n_cand : n_items;
-	int64_t		bad = -1;
-	int64_t		r;
-
-	AFF_ASSERT(t->k >= 0);
-	for (r = 0; r < n; r++)
-	{
-		int32_t		i = flt->cand ? flt->cand[r] : (int32_t) r;
-
-		AFF_ASSERT(i >= 0 && i < n_items);
-		AFF_ASSERT(r == 0 || !flt->cand || flt->cand[r - 1] < i);
-		if (seen)
-		{
-			while (seen < seen_end && *seen < i)
-				seen++;
-			if (seen < seen_end && *seen == i)
-				continue;
-		}
-		if (flt->skip && flt->skip[i])
-			continue;
-		if (!isfinite(scores[i]))
-		{
-			if (bad < 0)
-				bad = i;
-			continue;
-		}
-		offer(t, scores[i], i);
-	}
-	return bad;
+	if (flt->cand)
+		return topk_loop(scores, n_items, flt, t, flt->cand);
+	return topk_loop(scores, n_items, flt, t, NULL);
 }
 
 /* a . b in float, summed in index order (bit-stable across callers). */

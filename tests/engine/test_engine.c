@@ -349,6 +349,177 @@ is_topk(const float *scores, int64_t n, const uint8_t *excluded, const AffScored
 	return 1;
 }
 
+/* Best first: a higher score, then a lower index (the top-k's order). */
+static int
+cmp_scored(const void *pa, const void *pb)
+{
+	const AffScored *a = pa;
+	const AffScored *b = pb;
+
+	if (a->score != b->score)
+		return a->score > b->score ? -1 : 1;
+	return (a->index > b->index) - (a->index < b->index);
+}
+
+/*
+ * The top-k loop against a full sort, on random scores with many ties,
+ * masks, seen lists and candidate lists, at sizes from 1 to several
+ * hundred blocks of 16, k from 0 to more than the items, with a score that
+ * is not finite (NaN, +inf or -inf) placed at an item before the top (a
+ * lower index than every item kept), inside it (one of the items that
+ * would be kept) or after it.  The kept list must equal the sorted
+ * prefix exactly (ties go to the lower index), and the reported item must
+ * be the first considered one whose score is not finite.
+ */
+static void
+test_topk_loop(void)
+{
+	enum
+	{
+		MAX_ITEMS = 5000, TRIALS = 3000
+	};
+	static float scores[MAX_ITEMS];
+	static uint8_t skip[MAX_ITEMS];
+	static int32_t seen[MAX_ITEMS];
+	static int32_t cand[MAX_ITEMS];
+	static uint8_t in_cand[MAX_ITEMS];
+	static uint8_t in_seen[MAX_ITEMS];
+	static AffScored ref[MAX_ITEMS];
+	static AffScored heap[MAX_ITEMS + 8];
+	int			trial;
+	int			fails = 0;
+	int			placed[4] = {0};	/* none, before, inside, after: reported */
+	int			skipped = 0;
+
+	for (trial = 0; trial < TRIALS; trial++)
+	{
+		int64_t		n = (int64_t) (trial % 7 == 0 ? 1 + next_u64() % MAX_ITEMS : 1 + next_u64() % 300);
+		int64_t		ks[] = {0, 1, 3, 10, 50, n + 5};
+		int64_t		k = ks[next_u64() % 6];
+		int			dist = (int) (next_u64() % 3);
+		int			mask_pct = (int) ((int[]) {0, 10, 50}[next_u64() % 3]);
+		int			use_seen = (int) (next_u64() % 2);
+		int			use_cand = (int) (next_u64() % 3 == 0);
+		int			where = (int) (next_u64() % 4);
+		float		odd = (float[]) {NAN, INFINITY, -INFINITY}[next_u64() % 3];
+		AffItemFilter flt = {NULL, NULL, 0, NULL, 0};
+		AffTopK		t;
+		int64_t		n_ref = 0;
+		int64_t		want_bad = -1;
+		int64_t		got_bad;
+		int64_t		kept;
+		int64_t		want_kept;
+		int64_t		j;
+		int64_t		n_seen = 0;
+		int64_t		n_cand = 0;
+		int			ok = 1;
+
+		for (j = 0; j < n; j++)
+		{
+			/* few values (ties everywhere), spread values, or one value */
+			if (dist == 0)
+				scores[j] = (float) (next_u64() % 5);
+			else if (dist == 1)
+				scores[j] = (float) (next_u64() % 100000) / 1000.0f - 50.0f;
+			else
+				scores[j] = 0.25f;
+			skip[j] = (uint8_t) ((int) (next_u64() % 100) < mask_pct);
+			in_seen[j] = (uint8_t) (use_seen && next_u64() % 4 == 0);
+			in_cand[j] = (uint8_t) (!use_cand || next_u64() % 3 != 0);
+			if (in_seen[j])
+				seen[n_seen++] = (int32_t) j;
+			if (use_cand && in_cand[j])
+				cand[n_cand++] = (int32_t) j;
+		}
+		if (use_seen)
+		{
+			flt.seen = seen;
+			flt.n_seen = n_seen;
+		}
+		if (use_cand)
+		{
+			flt.cand = cand;
+			flt.n_cand = n_cand;
+		}
+		if (mask_pct > 0)
+			flt.skip = skip;
+
+		/* the sorted reference before a non-finite score is placed */
+		for (j = 0; j < n; j++)
+			if (in_cand[j] && !in_seen[j] && !(flt.skip && skip[j]))
+			{
+				ref[n_ref].score = scores[j];
+				ref[n_ref].index = (int32_t) j;
+				n_ref++;
+			}
+		qsort(ref, (size_t) n_ref, sizeof(AffScored), cmp_scored);
+		if (where != 0 && n_ref > 0)
+		{
+			int64_t		top = k < n_ref ? k : n_ref;
+			int64_t		lo = n;
+			int64_t		hi = -1;
+			int64_t		pick = -1;
+			int64_t		r;
+
+			for (r = 0; r < top; r++)
+			{
+				lo = ref[r].index < lo ? ref[r].index : lo;
+				hi = ref[r].index > hi ? ref[r].index : hi;
+			}
+			if (where == 2 && top > 0)
+				pick = ref[next_u64() % (uint64_t) top].index;
+			else
+				for (r = 0; r < n_ref; r++)
+				{
+					int64_t		c = ref[(r + (int64_t) (next_u64() % (uint64_t) n_ref)) % n_ref].index;
+
+					if ((where == 1 && c < lo) || (where == 3 && c > hi))
+					{
+						pick = c;
+						break;
+					}
+				}
+			if (pick >= 0)
+			{
+				scores[pick] = odd;
+				placed[where]++;
+			}
+		}
+		/* the reference again, the non-finite score left out */
+		n_ref = 0;
+		for (j = 0; j < n; j++)
+			if (in_cand[j] && !in_seen[j] && !(flt.skip && skip[j]))
+			{
+				if (!isfinite(scores[j]))
+				{
+					if (want_bad < 0)
+						want_bad = j;
+					continue;
+				}
+				ref[n_ref].score = scores[j];
+				ref[n_ref].index = (int32_t) j;
+				n_ref++;
+			}
+		qsort(ref, (size_t) n_ref, sizeof(AffScored), cmp_scored);
+		want_kept = k < n_ref ? k : n_ref;
+
+		aff_topk_init(&t, heap, k);
+		got_bad = aff_topk_scores(scores, n, &flt, &t);
+		kept = aff_topk_finish(&t);
+		ok = got_bad == want_bad && kept == want_kept;
+		for (j = 0; ok && j < kept; j++)
+			ok = heap[j].index == ref[j].index && heap[j].score == ref[j].score;
+		if (!ok && fails++ < 3)
+			printf("     trial %d: n %lld k %lld dist %d mask %d%% seen %d cand %d: bad %lld (want %lld), kept %lld (want %lld)\n",
+				   trial, (long long) n, (long long) k, dist, mask_pct, use_seen, use_cand,
+				   (long long) got_bad, (long long) want_bad, (long long) kept, (long long) want_kept);
+		skipped += n > 160 && !use_cand && k > 0 && k < n_ref;
+	}
+	check(fails == 0 && placed[1] > 100 && placed[2] > 100 && placed[3] > 100 && skipped > 100,
+		  "top-k loop = full sort on 3000 random filters (ties, masks, seen, candidates, NaN/inf before, inside, after the top)",
+		  (double) fails, 0);
+}
+
 /* Every method: scores, pairs, baskets, item rows, contributions, batch. */
 static void
 test_method(int method, int64_t users, int64_t items)
@@ -739,6 +910,7 @@ test_memory_guard(void)
 int
 main(void)
 {
+	test_topk_loop();
 	test_method(AFF_METHOD_IMPLICIT_ALS, 400, 120);
 	test_method(AFF_METHOD_POPULARITY, 300, 80);
 	test_method(AFF_METHOD_EASE, 300, 80);
