@@ -13,7 +13,7 @@ crosses many chunk edges) and with the real ones on a 45 MB value: the
 polled writer, seal, validator and base64 codec against one-pass reference
 code, and a poll that asks to stop stops each.  The small value's content
 digest is compared with hashlib's SHA-256 and its checksum with the
-Python transcription in tests/fuzz/seeds.py.
+Python writer of the format in tests/fuzz/seeds.py.
 
 "Within a second" is the contract of the foundation issue (the backend's
 own thread polls for interrupts between blocks of rows); no published
