@@ -15,7 +15,7 @@ code, and a poll that asks to stop stops each.  The small value's content
 digest is compared with hashlib's SHA-256 and its checksum with the
 Python writer of the format in tests/fuzz/seeds.py.
 
-"Within a second" is the contract of the foundation issue (the backend's
+"Within a second" is the project's cancellation contract (the backend's
 own thread polls for interrupts between blocks of rows); no published
 source, it is this project's requirement.  Leftover worker threads are
 checked through /proc/<backend pid>/task, which lists every thread of the
