@@ -66,3 +66,18 @@ FROM type_models;
 -- a section count larger than exists
 SELECT encode(overlay(decode(model::text, 'base64') PLACING '\x6300'::bytea FROM 11 FOR 2), 'base64')::affinity.model
 FROM type_models;
+
+-- describe() lists the value's sections by name (from the format's section
+-- table) with their element counts and bytes; they fit in the value
+WITH m AS (
+  SELECT affinity.fit(u, i, 1::real, '{"factors": 2, "iterations": 1, "threads": 1}') AS model
+  FROM (VALUES (1::bigint, 10::bigint), (1, 11), (2, 11), (3, 12)) v(u, i))
+SELECT s.key AS section, (s.value->>'count')::bigint AS count, (s.value->>'bytes')::bigint AS bytes
+FROM m, jsonb_each(affinity.describe(model)->'sections') s
+ORDER BY s.key;
+WITH d AS (
+  SELECT affinity.describe(affinity.fit(u::text, i::text, 1::real, '{"method": "popularity"}')) AS d
+  FROM (VALUES (1, 10), (1, 11), (2, 11), (3, 12)) v(u, i))
+SELECT count(*) AS sections,
+       sum((s.value->>'bytes')::bigint) < min((d->>'size_bytes')::bigint) AS fit_in_value
+FROM d, jsonb_each(d->'sections') s;

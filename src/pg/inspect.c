@@ -127,20 +127,19 @@ read_part(struct varlena *raw, uint64 total, uint64 off, uint64 n, void *dst)
 }
 
 /*
- * The header, section table and the two per-sweep arrays of argument 0,
- * read without fetching the factors.  Offsets count from the start of the
+ * The header, section table (into table, AFF_SEC_MAX entries of room) and
+ * the two per-sweep arrays of argument 0, read without fetching the factors.  Offsets count from the start of the
  * value; a slice of a TOAST pointer counts from the first data byte, hence
  * the VARHDRSZ shift.
  */
 static void
-read_summary(FunctionCallInfo fcinfo, AffModelHeader *h, double **loss,
-			 double **secs, int64 *n_sweeps)
+read_summary(FunctionCallInfo fcinfo, AffModelHeader *h, AffSection *table,
+			 double **loss, double **secs, int64 *n_sweeps)
 {
 	struct varlena *raw = (struct varlena *) PG_GETARG_RAW_VARLENA_P(0);
 	struct varlena *v = raw;
 	int			shift = VARHDRSZ;
 	uint64		total;
-	AffSection	table[AFF_SEC_MAX];
 	int			i;
 
 	if (!VARATT_IS_EXTERNAL_ONDISK(raw))
@@ -186,6 +185,32 @@ read_summary(FunctionCallInfo fcinfo, AffModelHeader *h, double **loss,
 	}
 }
 
+/*
+ * The value's sections by name, from the section table of the format:
+ * "sections": {"user_keys": {"count": n, "bytes": b}, ...}.  Kinds outside
+ * the table (a damaged header read by slices) are left out.
+ */
+static void
+describe_sections(StringInfo s, const AffModelHeader *h, const AffSection *table)
+{
+	int			i;
+	bool		first = true;
+
+	appendStringInfoString(s, ", \"sections\": {");
+	for (i = 0; i < h->n_sections; i++)
+	{
+		const AffSection *t = &table[i];
+
+		if (t->kind < 1 || t->kind > AFF_SEC_MAX || aff_section_defs[t->kind].name == NULL)
+			continue;
+		appendStringInfo(s, "%s\"%s\": {\"count\": " UINT64_FORMAT ", \"bytes\": " UINT64_FORMAT "}",
+						 first ? "" : ", ", aff_section_defs[t->kind].name,
+						 (uint64) t->count, (uint64) t->count * aff_section_defs[t->kind].elem_size);
+		first = false;
+	}
+	appendStringInfoString(s, "}");
+}
+
 PG_FUNCTION_INFO_V1(affinity_describe);
 
 /* describe(model) -> jsonb, from the header and per-sweep arrays only */
@@ -194,12 +219,13 @@ affinity_describe(PG_FUNCTION_ARGS)
 {
 	AffModelHeader hd;
 	const AffModelHeader *h = &hd;
+	AffSection	table[AFF_SEC_MAX];
 	double	   *loss;
 	double	   *secs;
 	int64		n_sweeps;
 	StringInfoData s;
 
-	read_summary(fcinfo, &hd, &loss, &secs, &n_sweeps);
+	read_summary(fcinfo, &hd, table, &loss, &secs, &n_sweeps);
 	initStringInfo(&s);
 	appendStringInfo(&s, "{\"format_version\": %d, \"method\": \"%s\", \"key_type\": \"%s\", "
 					 "\"users\": " INT64_FORMAT ", \"items\": " INT64_FORMAT
@@ -217,6 +243,7 @@ affinity_describe(PG_FUNCTION_ARGS)
 					 h->dropped_interactions);
 	append_doubles(&s, "loss", loss, loss ? n_sweeps : 0);
 	append_doubles(&s, "sweep_seconds", secs, secs ? n_sweeps : 0);
+	describe_sections(&s, h, table);
 	appendStringInfo(&s, ", \"fit_seconds\": %s, \"peak_memory_bytes\": " INT64_FORMAT
 					 ", \"size_bytes\": " UINT64_FORMAT
 					 ", \"checksum\": \"%016llx\", \"fingerprint\": \"%016llx\"}",
