@@ -5,12 +5,14 @@
  *		hash key, text_key.c) and keeps the texts beside them, in key order,
  *		for output and for checking lookups.
  *
- * During a fit each distinct text goes into a TextDict (a hash table in a
- * memory context of its own).  Two different texts with the same key under
- * the fit's hash key, which only chance can produce, are reported to the
- * caller, which draws another hash key and re-keys the dictionaries and its
- * rows (text_dict_rekey); a fit never refuses distinct texts.  Since nobody
- * knows the hash key, nobody can choose texts that crowd one bucket of the
+ * During a fit each distinct text goes into a TextDict: its bytes go to
+ * the end of one arena, and its key with the text's offset and length to an
+ * open-addressing table (linear probing) indexed by the key itself.  Two
+ * different texts with the same key under the fit's hash key, which only
+ * chance can produce, are reported to the caller, which draws another hash
+ * key and re-keys the dictionaries and its rows (text_dict_rekey); a fit
+ * never refuses distinct texts.  Since nobody knows the hash key, nobody can
+ * choose texts that crowd one run of slots of the
  * table either.  While serving, a text is hashed under the model's key,
  * found by binary search, and then compared byte for byte with the stored
  * text, so a text the model does not hold can never be taken for one it
@@ -25,29 +27,89 @@
 
 #include "../core/interactions.h"
 
-/* Texts up to this size are packed into shared blocks of TEXT_BLOCK bytes. */
-#define TEXT_BLOCK		(64 * 1024)
-#define TEXT_SMALL		(TEXT_BLOCK / 16)
+/* First capacities of the table (slots) and of the arena (bytes). */
+#define TABLE_FIRST		1024
+#define ARENA_FIRST		(64 * 1024)
 
-typedef struct TextEntry
+/* Largest capacity (2^40 slots of 32 bytes: far beyond any memory). */
+#define TABLE_MAX		((uint64) 1 << 40)
+
+/* A table of cap slots (a power of two) holds at most 70 % of cap. */
+#define TABLE_FULL(n, cap)	((uint64) (n) * 10 > (uint64) (cap) * 7)
+
+/* An empty table of the first capacity that holds nelem slots. */
+static void
+table_init(TextDict *d, TextTable *t, int64 nelem)
 {
-	int64		key;
-	int64		mapped;			/* its key in another table (merge, re-key) */
-	char	   *s;				/* not terminated */
-	int32		len;
-} TextEntry;
+	uint64		cap = TABLE_FIRST;
 
-static HTAB *
-new_table(TextDict *d, long nelem)
+	while (TABLE_FULL(nelem, cap))
+	{
+		if (cap >= TABLE_MAX)
+			ereport(ERROR,
+					(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
+					 errmsg("too many distinct text keys in affinity.fit"),
+					 errdetail("A side of the fit holds " INT64_FORMAT " distinct texts.",
+							   nelem)));
+		cap *= 2;
+	}
+	StaticAssertStmt(TABLE_MAX <= MaxAllocHugeSize / sizeof(TextSlot),
+					 "the slot array of TABLE_MAX slots fits one allocation");
+	t->slots = MemoryContextAllocExtended(d->cxt, cap * sizeof(TextSlot),
+										  MCXT_ALLOC_HUGE | MCXT_ALLOC_ZERO);
+	t->mask = cap - 1;
+	t->n = 0;
+}
+
+/*
+ * The slot of key in t, or the empty slot where it would go.  The table is
+ * never full (TABLE_FULL), so the probe ends.
+ */
+static inline TextSlot *
+table_slot(const TextTable *t, int64 key)
 {
-	HASHCTL		ctl;
+	uint64		i = (uint64) key & t->mask;
 
-	memset(&ctl, 0, sizeof(ctl));
-	ctl.keysize = sizeof(int64);
-	ctl.entrysize = sizeof(TextEntry);
-	ctl.hcxt = d->cxt;
-	return hash_create("affinity text keys", Max(nelem, 1024), &ctl,
-					   HASH_ELEM | HASH_BLOBS | HASH_CONTEXT);
+	for (;;)
+	{
+		TextSlot   *e = &t->slots[i];
+
+		if (!e->used || e->key == key)
+			return e;
+		i = (i + 1) & t->mask;
+	}
+}
+
+/* The used slot of key in t, or NULL. */
+static TextSlot *
+table_find(const TextTable *t, int64 key)
+{
+	TextSlot   *e = table_slot(t, key);
+
+	return e->used ? e : NULL;
+}
+
+/*
+ * Double the capacity of t, placing every slot again by its stored key
+ * (keys are distinct within a table: no text is compared or hashed).
+ */
+static void
+table_grow(TextDict *d, TextTable *t)
+{
+	TextTable	nt;
+	uint64		i;
+
+	table_init(d, &nt, (int64) (t->mask + 1));
+	for (i = 0; i <= t->mask; i++)
+	{
+		if ((i & 0xffff) == 0xffff)
+			CHECK_FOR_INTERRUPTS();
+		if (t->slots[i].used)
+			*table_slot(&nt, t->slots[i].key) = t->slots[i];
+	}
+	nt.n = t->n;
+	pfree(t->slots);
+	*t = nt;
 }
 
 /* An empty dictionary in a new child context of parent. */
@@ -59,7 +121,9 @@ text_dict_create(MemoryContext parent)
 	TextDict   *d = MemoryContextAllocZero(cxt, sizeof(TextDict));
 
 	d->cxt = cxt;
-	d->tab = new_table(d, 1024);
+	d->arena = MemoryContextAllocHuge(cxt, ARENA_FIRST);
+	d->arena_size = ARENA_FIRST;
+	table_init(d, &d->tab, 0);
 	return d;
 }
 
@@ -73,38 +137,39 @@ text_dict_free(TextDict *d)
 int64
 text_dict_count(TextDict *d)
 {
-	return (int64) hash_get_num_entries(d->tab);
+	return d->tab.n;
 }
 
-/* Bytes the dictionary holds: texts, table, entries, block slack. */
+/* Bytes the dictionary holds: texts, table, arena slack. */
 Size
 text_dict_memory(TextDict *d)
 {
 	return MemoryContextMemAllocated(d->cxt, true);
 }
 
-/* A copy of s[0..len) in the dictionary's memory (small texts packed). */
-static char *
+/* Append s[0..len) to the arena; its offset there. */
+static uint64
 store_text(TextDict *d, const char *s, int len)
 {
-	char	   *p;
+	uint64		off = d->bytes;
 
-	if (len > TEXT_SMALL)
-		p = MemoryContextAllocHuge(d->cxt, Max(len, 1));
-	else
+	if (d->arena_size - d->bytes < (Size) len)
 	{
-		if (d->arena_left < (Size) len)
-		{
-			d->arena = MemoryContextAlloc(d->cxt, TEXT_BLOCK);
-			d->arena_left = TEXT_BLOCK;
-		}
-		p = d->arena;
-		d->arena += len;
-		d->arena_left -= len;
+		Size		size = d->arena_size;
+
+		if ((Size) len > MaxAllocHugeSize - d->bytes)
+			ereport(ERROR,
+					(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
+					 errmsg("text keys of affinity.fit exceed the memory one allocation can hold"),
+					 errdetail("The texts of a side of the fit take %zu bytes.", d->bytes)));
+		while (size - d->bytes < (Size) len)
+			size = (size > MaxAllocHugeSize / 2) ? MaxAllocHugeSize : size * 2;
+		d->arena = repalloc_huge(d->arena, size);
+		d->arena_size = size;
 	}
-	memcpy(p, s, len);
+	memcpy(d->arena + off, s, len);
 	d->bytes += len;
-	return p;
+	return off;
 }
 
 /*
@@ -117,18 +182,27 @@ text_dict_add(TextDict *d, const uint64 hash_key[2], const char *s, int len,
 			  bool *collision)
 {
 	int64		key = aff_text_key(hash_key, s, (size_t) len);
-	bool		found;
-	TextEntry  *e = hash_search(d->tab, &key, HASH_ENTER, &found);
+	TextSlot   *e = table_slot(&d->tab, key);
 
 	*collision = false;
-	if (!found)
+	if (e->used)
 	{
-		e->len = len;
-		e->mapped = 0;
-		e->s = store_text(d, s, len);
+		if (e->len != len || memcmp(d->arena + e->off, s, len) != 0)
+			*collision = true;
+		return key;
 	}
-	else if (e->len != len || memcmp(e->s, s, len) != 0)
-		*collision = true;
+	if (TABLE_FULL(d->tab.n + 1, d->tab.mask + 1))
+	{
+		table_grow(d, &d->tab);
+		e = table_slot(&d->tab, key);
+	}
+	/* store first: an error there leaves the table as it was */
+	e->off = store_text(d, s, len);
+	e->key = key;
+	e->len = len;
+	e->mapped = 0;
+	e->used = true;
+	d->tab.n++;
 	return key;
 }
 
@@ -140,23 +214,21 @@ text_dict_add(TextDict *d, const uint64 hash_key[2], const char *s, int len,
 bool
 text_dict_merge(TextDict *into, const uint64 hash_key[2], TextDict *from)
 {
-	HASH_SEQ_STATUS seq;
-	TextEntry  *e;
-	int64		n = 0;
+	uint64		i;
 
-	hash_seq_init(&seq, from->tab);
-	while ((e = hash_seq_search(&seq)) != NULL)
+	for (i = 0; i <= from->tab.mask; i++)
 	{
+		TextSlot   *e = &from->tab.slots[i];
 		bool		collision;
 
-		if ((++n & 0xffff) == 0)
+		if ((i & 0xffff) == 0xffff)
 			CHECK_FOR_INTERRUPTS();
-		e->mapped = text_dict_add(into, hash_key, e->s, e->len, &collision);
+		if (!e->used)
+			continue;
+		e->mapped = text_dict_add(into, hash_key, from->arena + e->off, e->len,
+								  &collision);
 		if (collision)
-		{
-			hash_seq_term(&seq);
 			return false;
-		}
 	}
 	return true;
 }
@@ -165,35 +237,38 @@ text_dict_merge(TextDict *into, const uint64 hash_key[2], TextDict *from)
  * Compute every text's key under a new hash key into a second table, and
  * record it in the current entries (text_dict_mapped), so the caller can
  * remap its rows before text_dict_rekey_finish.  False, with nothing
- * changed, when two texts collide under the new key.
+ * changed, when two texts collide under the new key.  Both tables point
+ * into the one arena.
  */
 bool
 text_dict_rekey(TextDict *d, const uint64 hash_key[2])
 {
-	HASH_SEQ_STATUS seq;
-	TextEntry  *e;
-	int64		n = 0;
+	uint64		i;
 
-	d->next = new_table(d, hash_get_num_entries(d->tab));
-	hash_seq_init(&seq, d->tab);
-	while ((e = hash_seq_search(&seq)) != NULL)
+	text_dict_rekey_abort(d);
+	table_init(d, &d->next, d->tab.n);
+	for (i = 0; i <= d->tab.mask; i++)
 	{
-		TextEntry  *ne;
-		bool		found;
+		TextSlot   *e = &d->tab.slots[i];
+		TextSlot   *ne;
 
-		if ((++n & 0xffff) == 0)
+		if ((i & 0xffff) == 0xffff)
 			CHECK_FOR_INTERRUPTS();
-		e->mapped = aff_text_key(hash_key, e->s, (size_t) e->len);
-		ne = hash_search(d->next, &e->mapped, HASH_ENTER, &found);
-		if (found)
+		if (!e->used)
+			continue;
+		e->mapped = aff_text_key(hash_key, d->arena + e->off, (size_t) e->len);
+		ne = table_slot(&d->next, e->mapped);
+		if (ne->used)
 		{
-			hash_seq_term(&seq);
 			text_dict_rekey_abort(d);
 			return false;
 		}
-		ne->s = e->s;
+		ne->key = e->mapped;
+		ne->off = e->off;
 		ne->len = e->len;
 		ne->mapped = 0;
+		ne->used = true;
+		d->next.n++;
 	}
 	return true;
 }
@@ -202,25 +277,25 @@ text_dict_rekey(TextDict *d, const uint64 hash_key[2])
 void
 text_dict_rekey_finish(TextDict *d)
 {
-	hash_destroy(d->tab);
+	pfree(d->tab.slots);
 	d->tab = d->next;
-	d->next = NULL;
+	memset(&d->next, 0, sizeof(d->next));
 }
 
 /* Drop the table under the new key. */
 void
 text_dict_rekey_abort(TextDict *d)
 {
-	if (d->next != NULL)
-		hash_destroy(d->next);
-	d->next = NULL;
+	if (d->next.slots != NULL)
+		pfree(d->next.slots);
+	memset(&d->next, 0, sizeof(d->next));
 }
 
 /* The key recorded by text_dict_merge or text_dict_rekey for key. */
 int64
 text_dict_mapped(TextDict *d, int64 key)
 {
-	TextEntry  *e = hash_search(d->tab, &key, HASH_FIND, NULL);
+	TextSlot   *e = table_find(&d->tab, key);
 
 	if (e == NULL)
 		elog(ERROR, "text key " INT64_FORMAT " lost during the fit", key);
@@ -231,15 +306,17 @@ text_dict_mapped(TextDict *d, int64 key)
 void
 text_dict_serialize(StringInfo buf, TextDict *d)
 {
-	HASH_SEQ_STATUS seq;
-	TextEntry  *e;
+	uint64		i;
 
-	pq_sendint64(buf, (int64) hash_get_num_entries(d->tab));
-	hash_seq_init(&seq, d->tab);
-	while ((e = hash_seq_search(&seq)) != NULL)
+	pq_sendint64(buf, d->tab.n);
+	for (i = 0; i <= d->tab.mask; i++)
 	{
+		TextSlot   *e = &d->tab.slots[i];
+
+		if (!e->used)
+			continue;
 		pq_sendint32(buf, e->len);
-		pq_sendbytes(buf, e->s, e->len);
+		pq_sendbytes(buf, d->arena + e->off, e->len);
 	}
 }
 
@@ -276,21 +353,28 @@ void
 text_dict_layout(TextDict *d, const int64 *keys, int64 n, int64 **off,
 				 char **bytes, uint64 *len)
 {
-	int64	   *o = palloc_extended(sizeof(int64) * (n + 1), MCXT_ALLOC_HUGE);
-	char	   *b = palloc_extended(d->bytes + 1, MCXT_ALLOC_HUGE);
+	int64	   *o;
+	char	   *b;
 	uint64		at = 0;
 	int64		i;
 
+	if (n < 0 || (uint64) n >= MaxAllocHugeSize / sizeof(int64))
+		elog(ERROR, "invalid number of text keys: " INT64_FORMAT, n);
+	o = palloc_extended(sizeof(int64) * (n + 1), MCXT_ALLOC_HUGE);
+	b = palloc_extended(d->bytes + 1, MCXT_ALLOC_HUGE);
 	for (i = 0; i < n; i++)
 	{
-		TextEntry  *e = hash_search(d->tab, &keys[i], HASH_FIND, NULL);
+		TextSlot   *e = table_find(&d->tab, keys[i]);
 
 		if ((i & 0xffff) == 0xffff)
 			CHECK_FOR_INTERRUPTS();
 		if (e == NULL)
 			elog(ERROR, "text key " INT64_FORMAT " lost during the fit", keys[i]);
+		/* each key once, so at never passes d->bytes */
+		if (e->len > d->bytes - at)
+			elog(ERROR, "text key " INT64_FORMAT " repeated in the model", keys[i]);
 		o[i] = (int64) at;
-		memcpy(b + at, e->s, e->len);
+		memcpy(b + at, d->arena + e->off, e->len);
 		at += e->len;
 	}
 	o[n] = (int64) at;

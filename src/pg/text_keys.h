@@ -9,9 +9,34 @@
 #include "affinity_pg.h"
 
 #include "lib/stringinfo.h"
-#include "utils/hsearch.h"
 
 #include "../core/text_key.h"
+
+/*
+ * One slot of a TextDict's table: a text's int64 key and where its bytes
+ * sit in the dictionary's arena.
+ */
+typedef struct TextSlot
+{
+	int64		key;
+	int64		mapped;			/* its key in another table (merge, re-key) */
+	uint64		off;			/* offset of the text in the arena */
+	int32		len;
+	bool		used;
+} TextSlot;
+
+/*
+ * An open-addressing table (linear probing, power-of-two capacity) of
+ * TextSlots indexed by the low bits of the key.  The key is SipHash-2-4
+ * under a hash key nobody outside the fit knows, so chosen texts cannot
+ * crowd one run of slots.
+ */
+typedef struct TextTable
+{
+	TextSlot   *slots;
+	uint64		mask;			/* capacity - 1 */
+	int64		n;				/* slots used */
+} TextTable;
 
 /*
  * The distinct texts of one side (users or items) of a fit, by int64 key
@@ -20,12 +45,12 @@
  */
 typedef struct TextDict
 {
-	HTAB	   *tab;			/* int64 key -> text */
-	HTAB	   *next;			/* the table under a new key, while re-keying */
+	TextTable	tab;			/* int64 key -> text */
+	TextTable	next;			/* the table under a new key, while re-keying */
 	MemoryContext cxt;
-	Size		bytes;			/* total text bytes */
-	char	   *arena;			/* free space of the current block of texts */
-	Size		arena_left;
+	char	   *arena;			/* every text, end to end, not terminated */
+	Size		bytes;			/* total text bytes (used part of arena) */
+	Size		arena_size;
 } TextDict;
 
 extern TextDict *text_dict_create(MemoryContext parent);
