@@ -46,6 +46,17 @@ def build_engine_program(exe, program, extra_flags=()):
     p = subprocess.run(cmd, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, universal_newlines=True)
     return p.returncode, p.stdout
 
+def reset_peak(pid):
+    """Reset VmHWM to the current RSS (proc(5): writing 5 to clear_refs);
+    False when the kernel refuses."""
+    try:
+        with open("/proc/%d/clear_refs" % pid, "w") as f:
+            f.write("5")
+        return True
+    except OSError:
+        return False
+
+
 def skip(reason):
     """Report a skip to the runner and stop."""
     print("skipped: " + reason)

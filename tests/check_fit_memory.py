@@ -28,7 +28,7 @@ import os
 
 import psycopg2
 
-from _common import Checker, connect, drop_schema, fresh_schema
+from _common import Checker, connect, drop_schema, fresh_schema, reset_peak
 
 MB = 1024 * 1024
 LIMIT_SLACK = 8 * MB
@@ -44,15 +44,6 @@ def status(pid):
             if key in ("VmRSS", "VmHWM"):
                 out[key] = int(rest.split()[0]) * 1024
     return out
-
-
-def reset_peak(pid):
-    try:
-        with open("/proc/%d/clear_refs" % pid, "w") as f:
-            f.write("5")
-        return True
-    except OSError:
-        return False
 
 
 def growth(cur, pid, sql, args=None):

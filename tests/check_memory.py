@@ -32,7 +32,7 @@
 
 import os
 
-from _common import Checker, connect, drop_schema, fresh_schema
+from _common import Checker, connect, drop_schema, fresh_schema, reset_peak
 
 RUN_BOUND = 2 * 1024 * 1024
 PEAK_BOUND = 16 * 1024 * 1024
@@ -72,16 +72,6 @@ def contexts(cur):
 
 def mb(x):
     return "%.2f MB" % (x / 1048576.0)
-
-
-def reset_peak(pid):
-    """Reset VmHWM to the current RSS (proc(5): writing 5 to clear_refs)."""
-    try:
-        with open("/proc/%d/clear_refs" % pid, "w") as f:
-            f.write("5")
-        return True
-    except OSError:
-        return False
 
 
 def main():

@@ -16,37 +16,14 @@
 #include "utils/ps_status.h"
 
 /*
- * Raise the engine's error: with its hint when it has one (and for option
- * errors, which the older glue does not know), else as engine_check does.
+ * Raise the engine's error: a cancellation as the pending interrupt, else
+ * with its SQLSTATE, detail and hint (engine_check, model_io.c).
  */
 void
 raise_engine_error(const AffError *err)
 {
-	int			code;
-
-	if (err->status != AFF_ERR_OPTION && err->hint[0] == '\0')
-		engine_check(err->status, err);
-	switch (err->status)
-	{
-		case AFF_ERR_OPTION:
-			code = ERRCODE_INVALID_PARAMETER_VALUE;
-			break;
-		case AFF_ERR_LIMIT:
-			code = ERRCODE_PROGRAM_LIMIT_EXCEEDED;
-			break;
-		case AFF_ERR_NUMERIC:
-			code = ERRCODE_NUMERIC_VALUE_OUT_OF_RANGE;
-			break;
-		default:
-			engine_check(err->status, err);
-			code = ERRCODE_INTERNAL_ERROR;
-	}
-	ereport(ERROR,
-			(errcode(code),
-			 errmsg("%s", err->msg),
-			 err->detail[0] ? errdetail("%s", err->detail) : 0,
-			 err->hint[0] ? errhint("%s", err->hint) : 0));
-	pg_unreachable();
+	engine_check(err->status, err);
+	elog(ERROR, "engine error without a status");
 }
 
 /*

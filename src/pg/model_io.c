@@ -49,7 +49,7 @@ context_allocator(MemoryContext cxt)
 	return a;
 }
 
-/* Raise the engine's error with the matching SQLSTATE. */
+/* Raise the engine's error with the matching SQLSTATE, its detail and hint. */
 void
 report_engine_error(const AffError *err)
 {
@@ -57,6 +57,9 @@ report_engine_error(const AffError *err)
 
 	switch (err->status)
 	{
+		case AFF_ERR_OPTION:
+			code = ERRCODE_INVALID_PARAMETER_VALUE;
+			break;
 		case AFF_ERR_NOMEM:
 			code = ERRCODE_OUT_OF_MEMORY;
 			break;
@@ -81,7 +84,8 @@ report_engine_error(const AffError *err)
 	ereport(ERROR,
 			(errcode(code),
 			 errmsg("%s", err->msg),
-			 err->detail[0] ? errdetail("%s", err->detail) : 0));
+			 err->detail[0] ? errdetail("%s", err->detail) : 0,
+			 err->hint[0] ? errhint("%s", err->hint) : 0));
 	pg_unreachable();
 }
 
