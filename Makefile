@@ -35,8 +35,8 @@ OBJS = \
 	src/pg/method_glue.o
 
 EXTENSION = affinity
-EXTVERSION = 1.2
-DATA = src/affinity--1.0.sql src/affinity--1.0--1.1.sql src/affinity--1.1--1.2.sql
+EXTVERSION = 1.3
+DATA = src/affinity--1.0.sql src/affinity--1.0--1.1.sql src/affinity--1.1--1.2.sql src/affinity--1.2--1.3.sql
 PGFILEDESC = "affinity - recommendation models in SQL"
 
 REGRESS = type fit serving batch metrics methods registry text_keys corrupt privileges errors upgrade

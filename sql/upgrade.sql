@@ -97,3 +97,6 @@ SELECT count(*) AS differences FROM (
   SELECT u AS user_id, t.* FROM upg_model, generate_series(1, 100) u, affinity.top_items(model, u, 5) t
   EXCEPT SELECT * FROM upg_before) d;
 DELETE FROM affinity.models WHERE name = 'orphaned';
+-- and on to 1.3
+ALTER EXTENSION affinity UPDATE TO '1.3';
+SELECT extversion FROM pg_extension WHERE extname = 'affinity';
