@@ -41,8 +41,27 @@ SELECT count(*) AS n FROM bat, affinity.top_items(model, (SELECT array_agg(item_
 SELECT array_agg(item_id ORDER BY rank) FROM bat, affinity.top_items(model, ARRAY[]::bigint[], 3);
 SELECT array_agg(item_id ORDER BY rank) FROM bat, affinity.top_items(model, ARRAY[999, NULL]::bigint[], 3);
 SELECT array_agg(item_id ORDER BY rank) = (SELECT array_agg(item_id ORDER BY rank) FROM bat, affinity.top_items(model, -1, 3))
-       AS same_as_unknown_user
+       AS same_as_unknown_user, min(source) AS source
 FROM bat, affinity.top_items(model, ARRAY[999]::bigint[], 3);
+SELECT count(*) FROM bat, affinity.top_items(model, ARRAY[999]::bigint[], 3, fallback_popular => false);
+-- a basket of known items: source 'basket'
+SELECT source, count(*) FROM bat, affinity.top_items(model, ARRAY[1, 2]::bigint[], 3) GROUP BY 1;
+-- the leading arguments are the user form's: model, key, k, exclude_seen,
+-- exclude, candidates, fallback_popular; weights come last (by name)
+SELECT array_agg(item_id ORDER BY rank) = (SELECT array_agg(item_id ORDER BY rank)
+         FROM bat, affinity.top_items(model, ARRAY[1, 2, 3]::bigint[], 5, true, ARRAY[4]::bigint[], NULL, true,
+                                      ARRAY[1, 1, 1]::real[])) AS positional
+FROM bat, affinity.top_items(model, ARRAY[1, 2, 3]::bigint[], 5, exclude => ARRAY[4]::bigint[]);
+-- the order of 1.2 (weights fourth) is refused by type, not taken as exclude_seen
+SELECT * FROM bat, affinity.top_items(model, ARRAY[1, 2]::bigint[], 3, ARRAY[1, 2]::real[]);
+-- a cart written as an untyped literal is taken as a user key (PostgreSQL
+-- resolves an untyped literal to text); the notice and the source column
+-- say so, and the cast avoids it
+CREATE TABLE bat_txt AS
+SELECT affinity.fit('c' || user_id, 'p' || item_id, weight, '{"factors": 2, "iterations": 3, "threads": 1}') AS model
+FROM bat_buys;
+SELECT min(source) AS source, count(*) FROM bat_txt, affinity.top_items(model, '{p1,p2}', 3);
+SELECT min(source) AS source, count(*) FROM bat_txt, affinity.top_items(model, '{p1,p2}'::text[], 3);
 -- candidates and exclude
 SELECT array_agg(item_id ORDER BY rank) FROM bat,
        affinity.top_items(model, ARRAY[1, 2]::bigint[], 10, candidates => ARRAY[3, 4, 13], exclude => ARRAY[4]);
@@ -88,8 +107,41 @@ FROM bat_wide, bat_all a FULL JOIN bat_each e USING (user_id, rank)
 WHERE abs(a.score - e.score) > 1e-5 IS NOT FALSE
    OR (a.item_id <> e.item_id
        AND abs(affinity.score(model, a.user_id, a.item_id) - e.score) > 1e-5);
--- a list of users (unknown ones skipped), exclude_seen => false, k above the catalogue
-SELECT user_id, count(*) FROM bat, affinity.top_items_for_all(model, 3, users => ARRAY[5, 40, 999]) GROUP BY 1 ORDER BY 1;
+-- the same with exclude and candidates (what is on promotion, what is in
+-- stock), 2 threads again: the batch's rows equal top_items' with the same
+-- filters, user by user
+SET affinity.threads = 2;
+CREATE TABLE bat_filter AS
+SELECT ARRAY[1, 2, 3, 50, 51]::bigint[] AS exclude,
+       (SELECT array_agg(i::bigint) FROM generate_series(1, 200, 3) i) AS candidates;
+CREATE TABLE bat_all_f AS
+SELECT t.* FROM bat_wide, bat_filter f,
+       affinity.top_items_for_all(model, 5, exclude => f.exclude, candidates => f.candidates) t;
+RESET affinity.threads;
+CREATE TABLE bat_each_f AS
+SELECT u AS user_id, t.* FROM bat_wide, bat_filter f, generate_series(1, 1500) u,
+       affinity.top_items(model, u, 5, exclude => f.exclude, candidates => f.candidates) t;
+SELECT count(*) AS rows, count(DISTINCT user_id) AS users,
+       bool_and(item_id % 3 = 1 AND item_id NOT IN (1, 50)) AS filtered,
+       bool_and(source = 'personal') AS personal
+FROM bat_all_f;
+SELECT count(*) AS mismatches
+FROM bat_wide, bat_all_f a FULL JOIN bat_each_f e USING (user_id, rank)
+WHERE abs(a.score - e.score) > 1e-5 IS NOT FALSE OR a.source IS DISTINCT FROM e.source
+   OR (a.item_id <> e.item_id
+       AND abs(affinity.score(model, a.user_id, a.item_id) - e.score) > 1e-5);
+-- a list of users, exclude_seen => false, k above the catalogue; an unknown
+-- user (999) gets the popular items, as top_items gives it, unless
+-- fallback_popular is false
+SELECT user_id, count(*), min(source) AS source FROM bat, affinity.top_items_for_all(model, 3, users => ARRAY[5, 40, 999, 999, NULL]) GROUP BY 1 ORDER BY 1;
+SELECT (SELECT array_agg(item_id || ':' || rank || ':' || source ORDER BY rank)
+        FROM bat, affinity.top_items_for_all(model, 4, users => ARRAY[999], exclude => ARRAY[1],
+                                             candidates => ARRAY[1, 2, 3, 4, 13, 14]) t)
+     = (SELECT array_agg(item_id || ':' || rank || ':' || source ORDER BY rank)
+        FROM bat, affinity.top_items(model, 999, 4, exclude => ARRAY[1],
+                                     candidates => ARRAY[1, 2, 3, 4, 13, 14]) t) AS same_as_top_items;
+SELECT user_id, count(*) FROM bat, affinity.top_items_for_all(model, 3, users => ARRAY[5, 999], fallback_popular => false) GROUP BY 1 ORDER BY 1;
+SELECT * FROM bat, affinity.top_items_for_all(model, 3, fallback_popular => NULL);
 SELECT count(*) FILTER (WHERE EXISTS (SELECT 1 FROM bat_buys b WHERE b.user_id = t.user_id AND b.item_id = t.item_id)) > 0
        AS seen_included
 FROM bat, affinity.top_items_for_all(model, 3, exclude_seen => false) t;

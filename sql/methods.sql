@@ -93,6 +93,16 @@ FROM mth, affinity.items_like(knn_all, 1, 24) l;
 SELECT count(*) AS pairs, bool_and(a.item_id = b.item_id AND a.similarity = b.similarity) AS same
 FROM mth, generate_series(1, 24) it, affinity.items_like(knn, it, 24) a
 JOIN affinity.items_like(knn_2threads, it, 24) b USING (rank);
+-- a basket's scores weigh each item's similarities by its weight: the
+-- score of item j is sum over basket items i of w_i * sim(i, j), the
+-- similarities being those items_like lists (ease: the same with B's rows,
+-- checked against numpy in tests/check_ease_numpy.py)
+SELECT count(*) AS items,
+       max(abs(t.score - (SELECT coalesce(sum(b.w * l.similarity), 0)
+                          FROM (VALUES (1::bigint, 2.5::real), (2, 0.5)) b (i, w),
+                               affinity.items_like(knn_all, b.i, 24) l
+                          WHERE l.item_id = t.item_id))) < 1e-6 AS weighted_sum
+FROM mth, affinity.top_items(knn_all, ARRAY[1, 2]::bigint[], 24, weights => ARRAY[2.5, 0.5]::real[]) t;
 
 -- ease reads the pairs as binary (weights do not matter), and a larger
 -- regularization shrinks the weights

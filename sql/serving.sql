@@ -64,9 +64,18 @@ SELECT array_agg(t.item_id ORDER BY t.rank) = (
        AS popular_fallback
 FROM srv, affinity.top_items(model, -1, 5) t;
 SELECT count(*) FROM srv, affinity.top_items(model, -1, 5, fallback_popular => false);
--- NULL model or user: no rows
+-- the source column says where each row came from: the user's own scores,
+-- or the popular items for a user the model does not know
+SELECT source, count(*) FROM srv, affinity.top_items(model, 1, 5) GROUP BY 1;
+SELECT source, count(*) FROM srv, affinity.top_items(model, -1, 5) GROUP BY 1;
+-- NULL model or key: no rows (nothing to serve, as a strict function
+-- gives); NULL for a setting (k, exclude_seen, fallback_popular): an error,
+-- since no setting is assumed silently
 SELECT count(*) FROM affinity.top_items(NULL::affinity.model, 1);
 SELECT count(*) FROM srv, affinity.top_items(model, NULL::bigint);
+SELECT count(*) FROM srv, affinity.top_items(model, 1, k => NULL);
+SELECT count(*) FROM srv, affinity.top_items(model, 1, exclude_seen => NULL);
+SELECT count(*) FROM srv, affinity.top_items(model, 1, fallback_popular => NULL);
 
 -- items like item 1 are first-group items, by cosine
 SELECT bool_and(item_id BETWEEN 2 AND 12) AS own_group, count(*) AS n,
@@ -101,7 +110,8 @@ SELECT count(*) AS rows FROM srv, generate_series(1, 60) u, affinity.top_items(m
 -- popularity models serve top_items and score, not factor functions
 CREATE TABLE srv_pop AS
 SELECT affinity.fit(user_id, item_id, weight, '{"method": "popularity"}') AS model FROM srv_buys;
-SELECT count(*) AS n, bool_and(NOT EXISTS (SELECT 1 FROM srv_buys b WHERE b.user_id = 1 AND b.item_id = t.item_id)) AS unseen
+SELECT count(*) AS n, bool_and(NOT EXISTS (SELECT 1 FROM srv_buys b WHERE b.user_id = 1 AND b.item_id = t.item_id)) AS unseen,
+       min(source) AS source
 FROM srv_pop, affinity.top_items(model, 1, 5) t;
 SELECT affinity.score(model, 1, 3) AS buyers_of_3 FROM srv_pop;
 SELECT * FROM srv_pop, affinity.items_like(model, 1, 5);

@@ -3,7 +3,9 @@
 -- ALTER EXTENSION affinity UPDATE to 1.1 and then to 1.2; the 1.1 registry's
 -- owners (role names) become role oids, and a model whose owner role no
 -- longer exists cannot be refreshed; C functions that name the older
--- library's symbols fail until the update to 1.2 binds them to the new ones.
+-- library's symbols fail until the update to 1.2 binds them to the new ones;
+-- a 1.2 database keeps its results under the 1.3 library until the update
+-- to 1.3, which makes top_items and the batch again with their grants.
 --
 SET client_min_messages = warning;
 DROP EXTENSION affinity CASCADE;
@@ -97,6 +99,44 @@ SELECT count(*) AS differences FROM (
   SELECT u AS user_id, t.* FROM upg_model, generate_series(1, 100) u, affinity.top_items(model, u, 5) t
   EXCEPT SELECT * FROM upg_before) d;
 DELETE FROM affinity.models WHERE name = 'orphaned';
+-- A 1.2 database served by the 1.3 library keeps the 1.2 arguments (the
+-- basket's weights fourth, the batch without filters and leaving unknown
+-- users out) and results (no source column).
+CREATE TABLE upg_12 AS
+SELECT 'basket' AS call, array_agg(item_id ORDER BY rank) AS items
+FROM upg_model, affinity.top_items(model, ARRAY[1, 2]::bigint[], 5, ARRAY[2, 1]::real[])
+UNION ALL
+SELECT 'batch', array_agg(item_id ORDER BY user_id, rank)
+FROM upg_model, affinity.top_items_for_all(model, 3, true, ARRAY[1, 2, 99999]::bigint[]);
+SELECT call, cardinality(items) FROM upg_12 ORDER BY call;
+CREATE TABLE upg_12_row AS SELECT t.* FROM upg_model, affinity.top_items(model, 1, 1) t;
+SELECT string_agg(attname, ', ' ORDER BY attnum) AS columns_in_1_2
+FROM pg_attribute WHERE attrelid = 'upg_12_row'::regclass AND attnum > 0;
+-- grants on the functions that 1.3 makes again are carried over
+CREATE ROLE regress_upg_reader;
+REVOKE EXECUTE ON FUNCTION affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean) FROM PUBLIC;
+GRANT EXECUTE ON FUNCTION affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean) TO regress_upg_reader;
 -- and on to 1.3
 ALTER EXTENSION affinity UPDATE TO '1.3';
 SELECT extversion FROM pg_extension WHERE extname = 'affinity';
+SELECT has_function_privilege('public', 'affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean)', 'EXECUTE') AS public_may,
+       has_function_privilege('regress_upg_reader', 'affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean)', 'EXECUTE') AS reader_may,
+       has_function_privilege('public', 'affinity.top_items(affinity.model, text, integer, boolean, text[], text[], boolean)', 'EXECUTE') AS public_may_text_form;
+-- and a dump keeps them: no grant is recorded as the extension's own
+-- (pg_dump leaves initial privileges out), as in a fresh install
+SELECT count(*) AS initial_privileges_recorded FROM pg_init_privs
+WHERE classoid = 'pg_proc'::regclass
+  AND objoid IN (SELECT oid FROM pg_proc WHERE pronamespace = 'affinity'::regnamespace
+                 AND proname IN ('top_items', 'top_items_for_all'));
+-- the same answers through the 1.3 forms
+SELECT (SELECT array_agg(item_id ORDER BY rank)
+        FROM upg_model, affinity.top_items(model, ARRAY[1, 2]::bigint[], 5, weights => ARRAY[2, 1]::real[])) = items AS same_basket
+FROM upg_12 WHERE call = 'basket';
+SELECT (SELECT array_agg(item_id ORDER BY user_id, rank)
+        FROM upg_model, affinity.top_items_for_all(model, 3, true, ARRAY[1, 2, 99999]::bigint[], fallback_popular => false)) = items AS same_batch
+FROM upg_12 WHERE call = 'batch';
+SELECT count(*) AS differences FROM (
+  SELECT u AS user_id, t.item_id, t.score, t.rank FROM upg_model, generate_series(1, 100) u, affinity.top_items(model, u, 5) t
+  EXCEPT SELECT * FROM upg_before) d;
+REVOKE ALL ON FUNCTION affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean) FROM regress_upg_reader;
+DROP ROLE regress_upg_reader;

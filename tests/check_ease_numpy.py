@@ -19,6 +19,8 @@ Checked through SQL, since there is no export function for item weights:
 - top_items(model, user, k) lists the k best unseen items of X B;
 - the summed weights are not used (binary X, as in the paper): a fit on the
   same pairs with other weights gives the same scores;
+- a basket with weights scores item j as sum_i w_i B[i, j] (the basket as
+  a weighted row x, scores x B), repeated items summing their weights;
 - on a second matrix of 700 items (the inverse works in blocks of 256
   items, so this crosses block borders and ends on a partial block), the
   full rows of B from items_like and the scores of a sample of users.
@@ -139,6 +141,34 @@ def check_top_items(ck, cur, S, X, user_ids, item_ids, index, probes):
              % (len(probes), K), repr(bad_all[:3]) if bad_all else "")
 
 
+def check_weighted_baskets(ck, cur, B, item_ids, index):
+    """Baskets with weights: scores = x B with x the weighted basket row."""
+    rng = np.random.default_rng(SEED + 4)
+    worst = 0.0
+    bad = []
+    for t in range(10):
+        picks = list(rng.choice(len(item_ids), 4, replace=False))
+        picks.append(picks[0])                   # a repeat: weights summed
+        w = [float(x) for x in rng.uniform(0.1, 4.0, size=len(picks))]
+        x = np.zeros(len(item_ids))
+        for n, wi in zip(picks, w):
+            x[n] += wi
+        ref = x @ B
+        cur.execute("SELECT item_id, score FROM affinity.top_items((SELECT model FROM m), %s::bigint[],"
+                    " %s, exclude_seen => false, weights => %s::real[])",
+                    ([item_ids[n] for n in picks], len(item_ids), w))
+        got = cur.fetchall()
+        if len(got) != len(item_ids):
+            bad.append((t, "rows", len(got)))
+            continue
+        err = max(abs(sc - ref[index[j]]) for j, sc in got)
+        worst = max(worst, err)
+        if err > SCORE_ABS_TOL + SCORE_REL_TOL:
+            bad.append((t, err))
+    ck.check(not bad, "10 weighted baskets (one item repeated): scores equal numpy's x B",
+             "max abs err %.2e (tol %.0e)%s" % (worst, SCORE_ABS_TOL, "; bad %r" % bad[:3] if bad else ""))
+
+
 def invent_wide(seed, n_users, n_items, n_pairs):
     """A larger invented matrix, drawn in bulk (skewed item popularity, every
     user and item present, weights 1..5); returns rows, W and the keys."""
@@ -217,6 +247,7 @@ def main():
     check_items_like(ck, cur, B, item_ids, index, list(rng.choice(N_ITEMS, 12, replace=False)))
     check_top_items(ck, cur, S, X, user_ids, item_ids, index,
                     list(rng.choice(N_USERS, 12, replace=False)))
+    check_weighted_baskets(ck, cur, B, item_ids, index)
 
     # binary X: other weights on the same pairs change nothing
     cur.execute("UPDATE interactions SET weight = weight * 7 + 1")

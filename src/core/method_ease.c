@@ -147,14 +147,14 @@ ease_fit(const AffMatrix *m, const AffOptions *o, const AffFitContext *cx,
 }
 
 static void
-ease_add_row(const AffModelView *v, int32_t i, float *scores)
+ease_add_row(const AffModelView *v, int32_t i, float scale, float *scores)
 {
 	int64_t		n = v->h->n_items;
 	const float *row = v->item_weights + (size_t) i * n;
 	int64_t		j;
 
 	for (j = 0; j < n; j++)
-		scores[j] += row[j];
+		scores[j] += scale * row[j];
 }
 
 static float
@@ -169,16 +169,16 @@ ease_user_scores(const AffServe *s, int64_t u, float *scores)
 	const AffModelView *v = s->v;
 	int64_t		lo = v->seen_ptr[u];
 
-	aff_weights_scores(v, ease_add_row, v->seen_items + lo, v->seen_ptr[u + 1] - lo, scores);
+	aff_weights_scores(v, ease_add_row, v->seen_items + lo, NULL, v->seen_ptr[u + 1] - lo,
+					   scores);
 }
 
 static AffStatus
 ease_basket_scores(const AffServe *s, const int32_t *idx, const float *w, int64_t n,
 				   float *scores, AffError *err)
 {
-	(void) w;					/* binary rows, as in the EASE paper */
 	(void) err;
-	aff_weights_scores(s->v, ease_add_row, idx, n, scores);
+	aff_weights_scores(s->v, ease_add_row, idx, w, n, scores);
 	return AFF_OK;
 }
 

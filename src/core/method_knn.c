@@ -71,12 +71,12 @@ knn_fit(const AffMatrix *m, const AffOptions *o, const AffFitContext *cx,
 }
 
 static void
-knn_add_row(const AffModelView *v, int32_t i, float *scores)
+knn_add_row(const AffModelView *v, int32_t i, float scale, float *scores)
 {
 	int64_t		j;
 
 	for (j = v->neighbor_ptr[i]; j < v->neighbor_ptr[i + 1]; j++)
-		scores[v->neighbor_idx[j]] += v->neighbor_sim[j];
+		scores[v->neighbor_idx[j]] += scale * v->neighbor_sim[j];
 }
 
 /* Lists are short (at most neighbors) and ordered by similarity. */
@@ -97,16 +97,16 @@ knn_user_scores(const AffServe *s, int64_t u, float *scores)
 	const AffModelView *v = s->v;
 	int64_t		lo = v->seen_ptr[u];
 
-	aff_weights_scores(v, knn_add_row, v->seen_items + lo, v->seen_ptr[u + 1] - lo, scores);
+	aff_weights_scores(v, knn_add_row, v->seen_items + lo, NULL, v->seen_ptr[u + 1] - lo,
+					   scores);
 }
 
 static AffStatus
 knn_basket_scores(const AffServe *s, const int32_t *idx, const float *w, int64_t n,
 				  float *scores, AffError *err)
 {
-	(void) w;					/* binary rows, like ease */
 	(void) err;
-	aff_weights_scores(s->v, knn_add_row, idx, n, scores);
+	aff_weights_scores(s->v, knn_add_row, idx, w, n, scores);
 	return AFF_OK;
 }
 

@@ -6,12 +6,13 @@
  */
 #include "method_weights.h"
 
+#include <math.h>
 #include <string.h>
 
 /* scores[0 .. n_items) = sum over items[0 .. n) of their weight rows. */
 void
 aff_weights_scores(const AffModelView *v, AffAddRowFn add_row, const int32_t *items,
-				   int64_t n, float *scores)
+				   const float *w, int64_t n, float *scores)
 {
 	int64_t		t;
 
@@ -19,7 +20,8 @@ aff_weights_scores(const AffModelView *v, AffAddRowFn add_row, const int32_t *it
 	for (t = 0; t < n; t++)
 	{
 		AFF_ASSERT(items[t] >= 0 && items[t] < v->h->n_items);
-		add_row(v, items[t], scores);
+		AFF_ASSERT(w == NULL || (w[t] >= 0 && isfinite(w[t])));
+		add_row(v, items[t], w ? w[t] : 1.0f, scores);
 	}
 }
 

@@ -10,10 +10,18 @@
  * engine code on buffers the engine allocated beforehand; this file parses
  * the arguments, emits each chunk's rows and checks for interrupts between
  * chunks on the backend thread.
+ *
+ * Users of the list that the model does not know get the model's popular
+ * items, as top_items gives them (unless fallback_popular is false), after
+ * the known users' rows; the result's source column says which rows are
+ * which.
  */
 #include "serving_common.h"
 
 #include "miscadmin.h"
+#include "catalog/pg_type.h"
+#include "utils/array.h"
+#include "utils/builtins.h"
 
 #include "../core/serve.h"
 
@@ -21,10 +29,47 @@
 #define CHUNK_USERS 4096
 #define CHUNK_ENTRIES (16 * 1024 * 1024)
 
+/*
+ * Where the arguments are.  1.3 declares (model, k, exclude_seen, users,
+ * exclude, candidates, fallback_popular) and, for text keys by name,
+ * (model, users, k, exclude_seen, exclude, candidates, fallback_popular);
+ * a database not yet updated from 1.2 declares (model, k, exclude_seen,
+ * users) and is served as it was: no filters, unknown users left out.
+ * -1: the argument is absent.
+ */
+typedef struct BatchArgs
+{
+	int			k;
+	int			exclude_seen;
+	int			users;
+	int			exclude;
+	int			candidates;
+	int			fallback;
+} BatchArgs;
+
+static const BatchArgs batch_args_1_3 = {1, 2, 3, 4, 5, 6};
+static const BatchArgs batch_args_named = {2, 3, 1, 4, 5, 6};
+static const BatchArgs batch_args_1_2 = {1, 2, 3, -1, -1, -1};
+
+/* Put one result row: (user, item, score, rank, source). */
+static void
+put_batch_row(FunctionCallInfo fcinfo, Datum user, Datum item, float score, int64 rank,
+			  Datum source)
+{
+	Datum		values[5];
+
+	values[0] = user;
+	values[1] = item;
+	values[2] = Float4GetDatum(score);
+	values[3] = Int32GetDatum((int32) rank);
+	values[4] = source;
+	put_row(fcinfo, values);
+}
+
 /* Emit the rows of users[0..n) from the batch's output. */
 static void
 emit_chunk(FunctionCallInfo fcinfo, const AffModelView *v, const int32 *users,
-		   int64 n, const AffBatch *b)
+		   int64 n, const AffBatch *b, Datum source)
 {
 	int64		r;
 	int64		j;
@@ -33,25 +78,123 @@ emit_chunk(FunctionCallInfo fcinfo, const AffModelView *v, const int32 *users,
 	for (r = 0; r < n; r++)
 		for (j = 0; j < b->kept[r]; j++)
 		{
-			Datum		values[4];
 			const AffScored *e = &b->out[r * b->k + j];
 
-			values[0] = key_datum(v, true, users[r]);
-			values[1] = key_datum(v, false, e->index);
-			values[2] = Float4GetDatum(e->score);
-			values[3] = Int32GetDatum((int32) (j + 1));
-			put_row(fcinfo, values);
+			put_batch_row(fcinfo, key_datum(v, true, users[r]), key_datum(v, false, e->index),
+						  e->score, j + 1, source);
 		}
 }
 
-PG_FUNCTION_INFO_V1(affinity_top_items_for_all);
+/* Order of bigint keys, and of text keys by length and bytes. */
+static int
+cmp_int64_datum(const void *a, const void *b)
+{
+	int64		x = DatumGetInt64(*(const Datum *) a);
+	int64		y = DatumGetInt64(*(const Datum *) b);
+
+	return x < y ? -1 : (x > y);
+}
+
+static int
+cmp_text_datum(const void *a, const void *b)
+{
+	text	   *x = DatumGetTextPP(*(const Datum *) a);
+	text	   *y = DatumGetTextPP(*(const Datum *) b);
+	int			lx = VARSIZE_ANY_EXHDR(x);
+	int			ly = VARSIZE_ANY_EXHDR(y);
+
+	if (lx != ly)
+		return lx < ly ? -1 : 1;
+	return memcmp(VARDATA_ANY(x), VARDATA_ANY(y), lx);
+}
 
 /*
- * top_items_for_all(model, k, exclude_seen, users) ->
- *		(user_id, item_id, score, rank)
+ * The keys of the users list (argument argno) that the model does not
+ * know, sorted and without repeats (a sort, so a long list of repeats
+ * costs n log n); *n gets their count.
  */
-Datum
-affinity_top_items_for_all(PG_FUNCTION_ARGS)
+static Datum *
+unknown_users(FunctionCallInfo fcinfo, int argno, const AffModelView *v, int *n)
+{
+	ArrayType  *arr = PG_GETARG_ARRAYTYPE_P(argno);
+	bool		text_call = ARR_ELEMTYPE(arr) == TEXTOID;
+	Datum	   *elems;
+	bool	   *nulls;
+	int			ne;
+	int			out = 0;
+	int			i;
+
+	if (text_call)
+		deconstruct_array(arr, TEXTOID, -1, false, TYPALIGN_INT, &elems, &nulls, &ne);
+	else
+		deconstruct_array(arr, INT8OID, 8, true, TYPALIGN_DOUBLE, &elems, &nulls, &ne);
+	for (i = 0; i < ne; i++)
+		if (!nulls[i] && elem_key_index(v, true, text_call, elems[i]) < 0)
+			elems[out++] = elems[i];
+	qsort(elems, out, sizeof(Datum), text_call ? cmp_text_datum : cmp_int64_datum);
+	*n = 0;
+	for (i = 0; i < out; i++)
+		if (i == 0 || (text_call ? cmp_text_datum : cmp_int64_datum) (&elems[i], &elems[i - 1]) != 0)
+			elems[(*n)++] = elems[i];
+	return elems;
+}
+
+/*
+ * The popular items (through the batch's exclude mask and candidates) for
+ * each of the n unknown users, as top_items gives an unknown user.
+ */
+static void
+emit_unknown(FunctionCallInfo fcinfo, const AffModelView *v, const AffBatch *b,
+			 const Datum *unknown, int n)
+{
+	AffItemFilter flt;
+	AffTopK		t;
+	int64		kept;
+	int64		bad;
+	Datum		source = CStringGetTextDatum(affinity_source_popular);
+	int			u;
+	int64		r;
+
+	if (n == 0)
+		return;
+	memset(&flt, 0, sizeof(flt));
+	flt.skip = b->exclude;
+	flt.cand = b->cand;
+	flt.n_cand = b->n_cand;
+	aff_topk_init(&t, palloc(sizeof(AffScored) * Max(b->k, 1)), b->k);
+	bad = aff_topk_scores(v->popularity, v->h->n_items, &flt, &t);
+	check_finite_scores(v, false, bad, "an unknown user");
+	kept = aff_topk_finish(&t);
+	for (u = 0; u < n; u++)
+	{
+		CHECK_FOR_INTERRUPTS();
+		for (r = 0; r < kept; r++)
+			put_batch_row(fcinfo, unknown[u], key_datum(v, false, t.heap[r].index),
+						  t.heap[r].score, r + 1, source);
+	}
+}
+
+/* The item mask of argument argno (exclude), or NULL when it is NULL. */
+static uint8 *
+exclude_mask(FunctionCallInfo fcinfo, int argno, const AffModelView *v)
+{
+	uint8	   *skip;
+	int32	   *idx;
+	int			n;
+	int			i;
+
+	if (argno < 0 || PG_ARGISNULL(argno))
+		return NULL;
+	idx = array_key_indices(fcinfo, argno, v, false, &n);
+	skip = palloc_extended(v->h->n_items, MCXT_ALLOC_HUGE | MCXT_ALLOC_ZERO);
+	for (i = 0; i < n; i++)
+		skip[idx[i]] = 1;
+	return skip;
+}
+
+/* The batch over the arguments where ba says they are. */
+static Datum
+top_items_for_all(FunctionCallInfo fcinfo, const BatchArgs *ba)
 {
 	AffModelView v;
 	AffServe	s;
@@ -61,6 +204,10 @@ affinity_top_items_for_all(PG_FUNCTION_ARGS)
 	AffStatus	st;
 	int32	   *users;
 	int			n_users;
+	Datum	   *unknown = NULL;
+	int			n_unknown = 0;
+	bool		fallback;
+	Datum		source;
 	int64		k;
 	int64		c;
 
@@ -68,13 +215,17 @@ affinity_top_items_for_all(PG_FUNCTION_ARGS)
 	if (PG_ARGISNULL(0))
 		return (Datum) 0;
 	model_fetch(fcinfo, 0, &v);
-	(void) model_method(&v);
 	check_output_keys(fcinfo, &v, 0);
-	k = get_k(fcinfo, 1, v.h->n_items);
-	require_arg(fcinfo, 2, "exclude_seen");
+	k = get_k(fcinfo, ba->k, v.h->n_items);
+	require_arg(fcinfo, ba->exclude_seen, "exclude_seen");
+	if (ba->fallback >= 0)
+		require_arg(fcinfo, ba->fallback, "fallback_popular");
+	fallback = ba->fallback >= 0 && PG_GETARG_BOOL(ba->fallback);
+	source = CStringGetTextDatum(model_method(&v)->personal ? affinity_source_personal
+								 : affinity_source_popular);
 	if (k == 0)
 		return (Datum) 0;
-	if (PG_ARGISNULL(3))
+	if (PG_ARGISNULL(ba->users))
 	{
 		n_users = (int) v.h->n_users;
 		users = palloc_extended(sizeof(int32) * n_users, MCXT_ALLOC_HUGE);
@@ -82,13 +233,26 @@ affinity_top_items_for_all(PG_FUNCTION_ARGS)
 			users[c] = (int32) c;
 	}
 	else
-		users = array_key_indices(fcinfo, 3, &v, true, &n_users);
+	{
+		users = array_key_indices(fcinfo, ba->users, &v, true, &n_users);
+		if (fallback)
+			unknown = unknown_users(fcinfo, ba->users, &v, &n_unknown);
+	}
 
 	memset(&s, 0, sizeof(s));
 	s.v = &v;
-	if (aff_batch_init(&b, &s, k, PG_GETARG_BOOL(2), resolve_threads(affinity_threads),
+	if (aff_batch_init(&b, &s, k, PG_GETARG_BOOL(ba->exclude_seen),
+					   resolve_threads(affinity_threads),
 					   Max(1, Min(CHUNK_USERS, CHUNK_ENTRIES / k)), &a, &err) != AFF_OK)
 		raise_engine_error(&err);
+	b.exclude = exclude_mask(fcinfo, ba->exclude, &v);
+	if (ba->candidates >= 0 && !PG_ARGISNULL(ba->candidates))
+	{
+		int			nc;
+
+		b.cand = array_key_indices(fcinfo, ba->candidates, &v, false, &nc);
+		b.n_cand = nc;
+	}
 	for (c = 0; c < n_users; c += b.chunk)
 	{
 		int64		n = Min(b.chunk, n_users - c);
@@ -99,7 +263,32 @@ affinity_top_items_for_all(PG_FUNCTION_ARGS)
 			check_finite_scores(&v, false, b.bad_item,
 								psprintf("user %s", key_cstring(&v, true, b.bad_user)));
 		engine_check(st, &err);
-		emit_chunk(fcinfo, &v, users + c, n, &b);
+		emit_chunk(fcinfo, &v, users + c, n, &b, source);
 	}
+	emit_unknown(fcinfo, &v, &b, unknown, n_unknown);
 	return (Datum) 0;
+}
+
+PG_FUNCTION_INFO_V1(affinity_top_items_for_all);
+
+/*
+ * top_items_for_all(model, k, exclude_seen, users, exclude, candidates,
+ *					 fallback_popular) -> (user_id, item_id, score, rank, source)
+ */
+Datum
+affinity_top_items_for_all(PG_FUNCTION_ARGS)
+{
+	return top_items_for_all(fcinfo, PG_NARGS() == 4 ? &batch_args_1_2 : &batch_args_1_3);
+}
+
+PG_FUNCTION_INFO_V1(affinity_top_items_for_all_named);
+
+/*
+ * top_items_for_all(model, users text[], k, exclude_seen, exclude,
+ *					 candidates, fallback_popular): the text form by name
+ */
+Datum
+affinity_top_items_for_all_named(PG_FUNCTION_ARGS)
+{
+	return top_items_for_all(fcinfo, &batch_args_named);
 }

@@ -10,6 +10,9 @@
 #include "affinity_pg.h"
 
 #include "miscadmin.h"
+#include "catalog/pg_type.h"
+#include "mb/pg_wchar.h"
+#include "utils/builtins.h"
 
 #include "serving_common.h"
 
@@ -113,6 +116,23 @@ forget_section(const AffModelView *v, int k, int64 u, uint64 *count)
 
 PG_FUNCTION_INFO_V1(affinity_forget_user);
 
+/* The user key of argument argno for a message: bigint, or text quoted and cut. */
+static char *
+user_for_message(FunctionCallInfo fcinfo, int argno)
+{
+	text	   *t;
+	int			len;
+	int			cut;
+
+	if (get_fn_expr_argtype(fcinfo->flinfo, argno) != TEXTOID)
+		return psprintf(INT64_FORMAT, PG_GETARG_INT64(argno));
+	t = PG_GETARG_TEXT_PP(argno);
+	len = VARSIZE_ANY_EXHDR(t);
+	cut = pg_mbcliplen(VARDATA_ANY(t), len, 64);
+	return psprintf("%s%s", quote_literal_cstr(pnstrdup(VARDATA_ANY(t), cut)),
+					cut < len ? "..." : "");
+}
+
 /*
  * forget_user(model, user_id) -> model: every section through the section
  * table's forget rule, the header's counts reduced.
@@ -130,7 +150,14 @@ affinity_forget_user(PG_FUNCTION_ARGS)
 	h = v.h;
 	u = key_arg_index(fcinfo, 1, &v, true);
 	if (u < 0)
+	{
+		/* said, not raised: erasing a user who was never fitted is done */
+		ereport(NOTICE,
+				(errmsg("user %s is not in the model: it is returned unchanged",
+						user_for_message(fcinfo, 1)),
+				 errdetail("The model holds no vector and no training items of this user.")));
 		PG_RETURN_DATUM(PG_GETARG_DATUM(0));
+	}
 	if (h->n_users == 1)
 		ereport(ERROR,
 				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),

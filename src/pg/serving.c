@@ -18,6 +18,7 @@
 
 #include "catalog/pg_type.h"
 #include "funcapi.h"
+#include "mb/pg_wchar.h"
 #include "utils/array.h"
 
 #include "../core/serve.h"
@@ -46,7 +47,7 @@ user_scores(const AffModelView *v, int64 u, float *scores)
 static void
 emit_best(FunctionCallInfo fcinfo, const AffModelView *v, const float *scores,
 		  const AffItemFilter *flt, int64 k, bool users, const char *request,
-		  int64 who, bool who_users)
+		  int64 who, bool who_users, const char *source)
 {
 	AffTopK		t;
 	int64		bad;
@@ -57,7 +58,51 @@ emit_best(FunctionCallInfo fcinfo, const AffModelView *v, const float *scores,
 		check_finite_scores(v, users, bad,
 							who < 0 ? request :
 							psprintf("%s %s", request, key_cstring(v, who_users, who)));
-	emit_topk(fcinfo, &t, v, users);
+	emit_topk(fcinfo, &t, v, users, source);
+}
+
+/*
+ * What top_items and the batch say of where a row came from (the result's
+ * source column): the user's own scores, the scores of the basket given,
+ * or the model's popularity (an unknown user or a basket of unknown items
+ * falling back, or a model that is popularity itself).
+ */
+const char *const affinity_source_personal = "personal";
+const char *const affinity_source_basket = "basket";
+const char *const affinity_source_popular = "popular";
+
+/*
+ * A user key that top_items does not know, given as text that reads like
+ * an array literal ('{A,B}'), is almost surely a cart whose literal was
+ * left without a type: PostgreSQL resolves an untyped literal to text, so
+ * the call took the user form.  Say so once per call.
+ */
+static void
+notice_cart_literal(FunctionCallInfo fcinfo, int argno)
+{
+	text	   *t;
+	int			len;
+	const char *p;
+
+	if (get_fn_expr_argtype(fcinfo->flinfo, argno) != TEXTOID)
+		return;
+	t = PG_GETARG_TEXT_PP(argno);
+	len = VARSIZE_ANY_EXHDR(t);
+	p = VARDATA_ANY(t);
+	while (len > 0 && (*p == ' ' || *p == '\t'))
+		p++, len--;
+	while (len > 0 && (p[len - 1] == ' ' || p[len - 1] == '\t'))
+		len--;
+	if (len >= 2 && p[0] == '{' && p[len - 1] == '}')
+	{
+		int			cut = pg_mbcliplen(p, len, 64);
+
+		ereport(NOTICE,
+				(errmsg("user \"%.*s%s\" is not in the model: these are its popular items",
+						cut, p, cut < len ? "..." : ""),
+				 errdetail("The key reads like an array literal, but PostgreSQL took the untyped literal as one user's key."),
+				 errhint("For the items of a cart, give the array its type: '{...}'::text[] (or ::bigint[]).")));
+	}
 }
 
 /* Raise the error of a serving operation that failed. */
@@ -106,7 +151,7 @@ PG_FUNCTION_INFO_V1(affinity_top_items);
 
 /*
  * top_items(model, user_id, k, exclude_seen, exclude, candidates,
- *			 fallback_popular) -> (item_id, score, rank)
+ *			 fallback_popular) -> (item_id, score, rank, source)
  */
 Datum
 affinity_top_items(PG_FUNCTION_ARGS)
@@ -133,6 +178,8 @@ affinity_top_items(PG_FUNCTION_ARGS)
 	require_arg(fcinfo, 3, "exclude_seen");
 	require_arg(fcinfo, 6, "fallback_popular");
 	u = key_arg_index(fcinfo, 1, v, true);
+	if (u < 0)
+		notice_cart_literal(fcinfo, 1);
 	if (k == 0 || (u < 0 && !PG_GETARG_BOOL(6)))
 		return (Datum) 0;
 
@@ -158,7 +205,8 @@ affinity_top_items(PG_FUNCTION_ARGS)
 		meth->candidate_scores(&s, u, flt.cand, flt.n_cand, scores);
 	else
 		meth->user_scores(&s, u, scores);
-	emit_best(fcinfo, v, scores, &flt, k, false, u < 0 ? "an unknown user" : "user", u, true);
+	emit_best(fcinfo, v, scores, &flt, k, false, u < 0 ? "an unknown user" : "user", u, true,
+			  u >= 0 && meth->personal ? affinity_source_personal : affinity_source_popular);
 	return (Datum) 0;
 }
 
@@ -275,14 +323,34 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 PG_FUNCTION_INFO_V1(affinity_top_items_basket);
 
 /*
- * top_items(model, basket bigint[], k, weights, exclude_seen, exclude,
- *			 candidates) -> (item_id, score, rank)
+ * Where the basket form's arguments are: 1.3 declares (model, basket, k,
+ * exclude_seen, exclude, candidates, fallback_popular, weights), the user
+ * form's order with weights last; a database not yet updated from 1.2
+ * declares (model, basket, k, weights, exclude_seen, exclude, candidates)
+ * and is served as it was (a basket of unknown items falls back).
+ */
+typedef struct BasketArgs
+{
+	int			weights;
+	int			exclude_seen;
+	int			exclude;
+	int			candidates;
+	int			fallback;		/* -1: always fall back */
+} BasketArgs;
+
+static const BasketArgs basket_args_1_3 = {7, 3, 4, 5, 6};
+static const BasketArgs basket_args_1_2 = {3, 4, 5, 6, -1};
+
+/*
+ * top_items(model, basket, k, exclude_seen, exclude, candidates,
+ *			 fallback_popular, weights) -> (item_id, score, rank, source)
  * For a user the model has never seen.  A basket with no known item gets
- * the most popular items.
+ * the most popular items (unless fallback_popular is false).
  */
 Datum
 affinity_top_items_basket(PG_FUNCTION_ARGS)
 {
+	const BasketArgs *ba = PG_NARGS() == 8 ? &basket_args_1_3 : &basket_args_1_2;
 	CachedModel *e;
 	const AffModelView *v;
 	const AffMethod *meth;
@@ -306,19 +374,23 @@ affinity_top_items_basket(PG_FUNCTION_ARGS)
 	meth = model_method(v);
 	check_output_keys(fcinfo, v, 0);
 	k = get_k(fcinfo, 2, v->h->n_items);
-	require_arg(fcinfo, 4, "exclude_seen");
+	require_arg(fcinfo, ba->exclude_seen, "exclude_seen");
+	if (ba->fallback >= 0)
+		require_arg(fcinfo, ba->fallback, "fallback_popular");
 	if (k == 0)
 		return (Datum) 0;
-	n = basket_items(fcinfo, v, 1, 3, &idx, &w);
+	n = basket_items(fcinfo, v, 1, ba->weights, &idx, &w);
+	if (n == 0 && ba->fallback >= 0 && !PG_GETARG_BOOL(ba->fallback))
+		return (Datum) 0;
 
 	skip = palloc0(v->h->n_items);
-	if (PG_GETARG_BOOL(4))
+	if (PG_GETARG_BOOL(ba->exclude_seen))
 		for (i = 0; i < n; i++)
 			skip[idx[i]] = 1;
-	mask_items(fcinfo, 5, v, skip);
+	mask_items(fcinfo, ba->exclude, v, skip);
 	memset(&flt, 0, sizeof(flt));
 	flt.skip = skip;
-	candidate_items(fcinfo, 6, v, &flt);
+	candidate_items(fcinfo, ba->candidates, v, &flt);
 
 	scores = alloc_scores(v);
 	if (n == 0)
@@ -328,7 +400,8 @@ affinity_top_items_basket(PG_FUNCTION_ARGS)
 		serve_context(e, &s, &a, SERVE_GRAM);
 		serve_check(meth->basket_scores(&s, idx, w, n, scores, &err), &err);
 	}
-	emit_best(fcinfo, v, scores, &flt, k, false, "the basket", -1, false);
+	emit_best(fcinfo, v, scores, &flt, k, false, "the basket", -1, false,
+			  n > 0 && meth->personal ? affinity_source_basket : affinity_source_popular);
 	return (Datum) 0;
 }
 
@@ -361,7 +434,12 @@ affinity_items_like(PG_FUNCTION_ARGS)
 	meth = model_method(v);
 	check_output_keys(fcinfo, v, 0);
 	if (meth->item_row == NULL)
-		require_factors(v, "items_like");
+		ereport(ERROR,
+				(errcode(ERRCODE_FEATURE_NOT_SUPPORTED),
+				 errmsg("items_like needs a model that relates items to items"),
+				 errdetail("This model was fitted with method \"%s\", which has no item-to-item similarities.",
+						   aff_method_name(v->h->method)),
+				 errhint("Fit with method \"implicit_als\" (cosine of item factors), \"ease\" or \"item_knn\" (learned item-to-item weights).")));
 	k = get_k(fcinfo, 2, v->h->n_items);
 	it = key_arg_index(fcinfo, 1, v, false);
 	if (it < 0 || k == 0)
@@ -374,7 +452,7 @@ affinity_items_like(PG_FUNCTION_ARGS)
 	skip = palloc(v->h->n_items);
 	meth->item_row(&s, it, sims, skip);
 	flt.skip = skip;
-	emit_best(fcinfo, v, sims, &flt, k, false, "the items like item", it, false);
+	emit_best(fcinfo, v, sims, &flt, k, false, "the items like item", it, false, NULL);
 	return (Datum) 0;
 }
 
@@ -418,7 +496,7 @@ affinity_users_like(PG_FUNCTION_ARGS)
 	skip[u] = 1;
 	memset(&flt, 0, sizeof(flt));
 	flt.skip = skip;
-	emit_best(fcinfo, v, sims, &flt, k, true, "the users like user", u, true);
+	emit_best(fcinfo, v, sims, &flt, k, true, "the users like user", u, true, NULL);
 	return (Datum) 0;
 }
 

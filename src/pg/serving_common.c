@@ -184,6 +184,24 @@ check_output_keys(FunctionCallInfo fcinfo, const AffModelView *v, int attno)
 }
 
 /*
+ * Index of one element of a key list (text when text_call, else bigint) of
+ * the model's users or items, or -1 when the model does not know it.  The
+ * list's type has been checked against the model's keys.
+ */
+int64
+elem_key_index(const AffModelView *v, bool users, bool text_call, Datum d)
+{
+	if (text_call)
+	{
+		text	   *k = DatumGetTextPP(d);
+
+		return text_key_index(v, users, VARDATA_ANY(k), VARSIZE_ANY_EXHDR(k));
+	}
+	return aff_find_key(users ? v->user_keys : v->item_keys,
+						users ? v->h->n_users : v->h->n_items, DatumGetInt64(d));
+}
+
+/*
  * Indices of the known keys of a bigint[] or text[] argument (NULL elements
  * and unknown keys ignored), sorted and without repeats.  *n gets the count.
  */
@@ -212,16 +230,7 @@ array_key_indices(FunctionCallInfo fcinfo, int argno, const AffModelView *v, boo
 
 		if (nulls[i])
 			continue;
-		if (text_call)
-		{
-			text	   *k = DatumGetTextPP(elems[i]);
-
-			j = text_key_index(v, users, VARDATA_ANY(k), VARSIZE_ANY_EXHDR(k));
-		}
-		else
-			j = aff_find_key(users ? v->user_keys : v->item_keys,
-							 users ? v->h->n_users : v->h->n_items,
-							 DatumGetInt64(elems[i]));
+		j = elem_key_index(v, users, text_call, elems[i]);
 		if (j >= 0)
 			idx[out++] = (int32) j;
 	}
@@ -233,21 +242,30 @@ array_key_indices(FunctionCallInfo fcinfo, int argno, const AffModelView *v, boo
 	return idx;
 }
 
-/* Emit the heap's content as (key, score, rank) rows. */
+/*
+ * Emit the heap's content as (key, score, rank) rows, with a fourth
+ * column, source, when the result has one (top_items since 1.3; a database
+ * not yet updated declares three columns, and gets three).
+ */
 void
-emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const AffModelView *v, bool users)
+emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const AffModelView *v, bool users,
+		  const char *source)
 {
+	ReturnSetInfo *rsinfo = (ReturnSetInfo *) fcinfo->resultinfo;
 	int64		n = aff_topk_finish(t);
 	int64		r;
+	bool		with_source = source != NULL && rsinfo->setDesc->natts >= 4;
+	Datum		src = with_source ? CStringGetTextDatum(source) : (Datum) 0;
 
 	AFF_ASSERT(n >= 0 && n <= t->k);
 	for (r = 0; r < n; r++)
 	{
-		Datum		values[3];
+		Datum		values[4];
 
 		values[0] = key_datum(v, users, t->heap[r].index);
 		values[1] = Float4GetDatum(t->heap[r].score);
 		values[2] = Int32GetDatum((int32) (r + 1));
+		values[3] = src;
 		put_row(fcinfo, values);
 	}
 }

@@ -12,15 +12,20 @@
 #include "../core/interactions.h"
 #include "../core/topk.h"
 
+extern const char *const affinity_source_personal;
+extern const char *const affinity_source_basket;
+extern const char *const affinity_source_popular;
+
 extern void materialize(FunctionCallInfo fcinfo);
 extern void put_row(FunctionCallInfo fcinfo, Datum *values);
 extern void require_arg(FunctionCallInfo fcinfo, int argno, const char *name);
 extern int64 get_k(FunctionCallInfo fcinfo, int argno, int64 limit);
 extern void require_factors(const AffModelView *v, const char *fn);
+extern int64 elem_key_index(const AffModelView *v, bool users, bool text_call, Datum d);
 extern int32 *array_key_indices(FunctionCallInfo fcinfo, int argno,
 								const AffModelView *v, bool users, int *n);
 extern void emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const AffModelView *v,
-					  bool users);
+					  bool users, const char *source);
 extern int64 key_arg_index(FunctionCallInfo fcinfo, int argno, const AffModelView *v,
 						   bool users);
 extern Datum key_datum(const AffModelView *v, bool users, int64 i);
