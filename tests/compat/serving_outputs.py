@@ -125,22 +125,22 @@ def serve(out_path, load=None):
         r = {}
         cur.execute("SELECT affinity.describe(%s)->>'fingerprint'" % m)
         r["fingerprint"] = cur.fetchone()[0]
-        r["top_items"] = md5_of(cur, "SELECT us.u, t.* FROM %s us, affinity.top_items(%s, us.u, 10) t ORDER BY 1, t.rank" % (users, m))
-        r["top_items_options"] = md5_of(cur, "SELECT us.u, t.* FROM %s us, affinity.top_items(%s, us.u, 7, exclude_seen => false, exclude => %s, candidates => %s) t ORDER BY 1, t.rank" % (users, m, excl, cands))
-        r["top_items_unknown"] = md5_of(cur, "SELECT t.* FROM affinity.top_items(%s, %s, 10, fallback_popular => true) t ORDER BY rank" % (m, "-1::bigint" if keys == "bigint" else "'nobody'::text"))
+        r["top_items"] = md5_of(cur, "SELECT us.u, t.item_id, t.score, t.rank FROM %s us, affinity.top_items(%s, us.u, 10) t ORDER BY 1, t.rank" % (users, m))
+        r["top_items_options"] = md5_of(cur, "SELECT us.u, t.item_id, t.score, t.rank FROM %s us, affinity.top_items(%s, us.u, 7, exclude_seen => false, exclude => %s, candidates => %s) t ORDER BY 1, t.rank" % (users, m, excl, cands))
+        r["top_items_unknown"] = md5_of(cur, "SELECT t.item_id, t.score, t.rank FROM affinity.top_items(%s, %s, 10, fallback_popular => true) t ORDER BY rank" % (m, "-1::bigint" if keys == "bigint" else "'nobody'::text"))
         r["top_items_basket"] = md5_of(cur, " UNION ALL ".join(
-            "(SELECT %d AS b, t.* FROM affinity.top_items(%s, %s, 8, weights => ARRAY[1, 2.5, 0.5, 1]::real[]) t)" % (j, m, basket(j))
+            "(SELECT %d AS b, t.item_id, t.score, t.rank FROM affinity.top_items(%s, %s, 8, weights => ARRAY[1, 2.5, 0.5, 1]::real[]) t)" % (j, m, basket(j))
             for j in range(0, 40, 3)) + " ORDER BY 1, rank")
         r["top_items_basket_options"] = md5_of(cur, " UNION ALL ".join(
-            "(SELECT %d AS b, t.* FROM affinity.top_items(%s, %s, 5, exclude_seen => false, exclude => %s, candidates => %s) t)" % (j, m, basket(j), excl, cands)
+            "(SELECT %d AS b, t.item_id, t.score, t.rank FROM affinity.top_items(%s, %s, 5, exclude_seen => false, exclude => %s, candidates => %s) t)" % (j, m, basket(j), excl, cands)
             for j in range(0, 40, 5)) + " ORDER BY 1, rank")
         all_users = "ARRAY(SELECT u FROM %s us)::%s" % (users, arr)
         all_items = "ARRAY(SELECT i FROM %s it)::%s" % (items, arr)
         if keys == "bigint":
-            r["top_items_for_all"] = md5_of(cur, "SELECT * FROM affinity.top_items_for_all(%s, 10) ORDER BY 1, rank" % m)
+            r["top_items_for_all"] = md5_of(cur, "SELECT user_id, item_id, score, rank FROM affinity.top_items_for_all(%s, 10) ORDER BY 1, rank" % m)
         else:
-            r["top_items_for_all"] = md5_of(cur, "SELECT * FROM affinity.top_items_for_all(%s, 10, true, %s) ORDER BY 1, rank" % (m, all_users))
-        r["top_items_for_all_list"] = md5_of(cur, "SELECT * FROM affinity.top_items_for_all(%s, 4, false, ARRAY(SELECT u FROM %s us ORDER BY u LIMIT 30)::%s) ORDER BY 1, rank" % (m, users, arr))
+            r["top_items_for_all"] = md5_of(cur, "SELECT user_id, item_id, score, rank FROM affinity.top_items_for_all(%s, 10, true, %s) ORDER BY 1, rank" % (m, all_users))
+        r["top_items_for_all_list"] = md5_of(cur, "SELECT user_id, item_id, score, rank FROM affinity.top_items_for_all(%s, 4, false, ARRAY(SELECT u FROM %s us ORDER BY u LIMIT 30)::%s) ORDER BY 1, rank" % (m, users, arr))
         r["items_like"] = md5_of(cur, "SELECT it.i, t.* FROM %s it, affinity.items_like(%s, it.i, 6) t ORDER BY 1, t.rank" % (items, m))
         r["items_like_candidates"] = md5_of(cur, "SELECT it.i, t.* FROM %s it, affinity.items_like(%s, it.i, 6, candidates => %s) t ORDER BY 1, t.rank" % (items, m, cands))
         r["users_like"] = md5_of(cur, "SELECT us.u, t.* FROM %s us, affinity.users_like(%s, us.u, 6) t ORDER BY 1, t.rank" % (users, m))
