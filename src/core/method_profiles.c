@@ -458,7 +458,8 @@ profile_info(const AffModelView *v)
 /*
  * Items like item it: cosine of the rows (computed in double), every item
  * of the catalogue, bought or not.  Items whose row is all zeros have no
- * similarity and are no answer; nor is it itself.  A row of zeros gets no
+ * similarity and are no answer, nor (feature rows) items that share no
+ * feature of non-zero weight with it, nor it itself.  A row of zeros gets no
  * look-alike at all.
  */
 static void
@@ -521,7 +522,8 @@ profiles_item_row(const AffServe *s, int64_t it, float *sims, uint8_t *skip)
 				if (q < qb && fi[q] == fi[j])
 					dot += (double) fv[q] * fv[j];
 			}
-			skip[i] = xn == 0 || qn == 0;
+			/* no shared feature (or none that weighs): no look-alike */
+			skip[i] = xn == 0 || qn == 0 || dot == 0;
 			sims[i] = skip[i] ? 0.0f : (float) (dot / (sqrt(qn) * sqrt(xn)));
 		}
 	}
