@@ -22,6 +22,7 @@ const AffMethod *const aff_methods[] = {
 	&aff_method_popularity,
 	&aff_method_ease,
 	&aff_method_item_knn,
+	&aff_method_item_profiles,
 };
 const int	aff_n_methods = (int) (sizeof(aff_methods) / sizeof(aff_methods[0]));
 
@@ -68,6 +69,7 @@ aff_default_regularization(int method)
 static const char *const method_choices[] = {"implicit_als", "popularity", "ease", "item_knn"};
 static const char *const solver_choices[] = {"cg", "cholesky"};
 static const char *const confidence_choices[] = {"linear", "log"};
+static const char *const normalization_choices[] = {"none", "l2", "tfidf"};
 
 #define OPT(f) offsetof(AffOptions, f)
 #define HDR(f) offsetof(AffModelHeader, f)
@@ -111,6 +113,11 @@ const AffOptionDef aff_option_defs[AFF_OPT_COUNT] = {
 	NULL, 0, OPT(max_items), HDR(max_items)},
 	{AFF_OPT_VERBOSE, "verbose", NULL, AFF_OPTTYPE_BOOL, 0, 0, false,
 	NULL, 0, OPT(verbose), AFF_NO_FIELD},
+	/* item_profiles: kept in its profile_info section, not in the header */
+	{AFF_OPT_NORMALIZATION, "normalization", NULL, AFF_OPTTYPE_CHOICE, 0, 0, false,
+	normalization_choices, 3, OPT(normalization), AFF_NO_FIELD},
+	{AFF_OPT_MIN_DF, "min_document_frequency", NULL, AFF_OPTTYPE_INT, 1, INT_MAX_D, false,
+	NULL, 0, OPT(min_document_frequency), AFF_NO_FIELD},
 };
 
 /*

@@ -44,6 +44,8 @@ typedef enum AffOptionId
 	AFF_OPT_NEIGHBORS,
 	AFF_OPT_MAX_ITEMS,
 	AFF_OPT_VERBOSE,
+	AFF_OPT_NORMALIZATION,		/* item_profiles */
+	AFF_OPT_MIN_DF,
 	AFF_OPT_COUNT
 } AffOptionId;
 
@@ -68,6 +70,8 @@ typedef struct AffOptions
 	double		epsilon;
 	int64_t		seed;
 	bool		verbose;
+	int			normalization;	/* item_profiles: AFF_NORM_* (profiles.h) */
+	int			min_document_frequency;
 } AffOptions;
 
 typedef enum AffOptionType
@@ -152,6 +156,12 @@ typedef struct AffMethod
 	bool		needs_gram;		/* basket scores and contributions need Y^T Y */
 	bool		user_vectors;	/* users_like works */
 	bool		personal;		/* scores depend on the user (reasons works) */
+	/*
+	 * A value of item content without users or training pairs (n_users =
+	 * nnz = 0): only item_row is served; the binding refuses every other
+	 * serving function for it, naming what the value is.
+	 */
+	bool		catalogue;
 
 	/*
 	 * Fit m into the method's sections of parts (the common sections and
@@ -192,6 +202,15 @@ typedef struct AffMethod
 	 */
 	AffStatus	(*contributions) (const AffServe *s, int64_t u, int64_t i,
 								  float *contrib, AffError *err);
+	/*
+	 * Content checks of the method's own sections and header fields, run
+	 * by validation after the format's checks (instead of the option
+	 * checks of the fitted methods); NULL for those.
+	 */
+	AffStatus	(*check_content) (const AffModelView *v, AffPollFn poll, void *poll_arg,
+								  AffError *err);
+	/* more figures for describe(): a JSON fragment "name": value, ... (NULL: none) */
+	void		(*describe) (const AffModelView *v, char *buf, size_t len);
 } AffMethod;
 
 extern const AffMethod *aff_method_by_code(int code);
@@ -204,6 +223,7 @@ extern const AffMethod aff_method_implicit_als;
 extern const AffMethod aff_method_popularity;
 extern const AffMethod aff_method_ease;
 extern const AffMethod aff_method_item_knn;
+extern const AffMethod aff_method_item_profiles;
 
 /* Fit scaffolding shared by the method files (method.c). */
 extern void aff_fit_header(AffModelParts *parts, const AffOptions *o,

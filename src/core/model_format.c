@@ -58,6 +58,24 @@ const AffSectionDef aff_section_defs[AFF_SEC_MAX + 1] = {
 	{AFF_SEC_ITEM_TEXT_OFF, "item_text_off", 8, AFF_NEED_TEXT, AFF_COUNT_ITEMS_PLUS_1, 0,
 	AFF_FORGET_KEEP},
 	{AFF_SEC_ITEM_TEXT, "item_text", 1, AFF_NEED_TEXT, AFF_COUNT_FREE, 0, AFF_FORGET_KEEP},
+	/* item_profiles: its check_content checks the free counts and the content */
+	{AFF_SEC_PROFILE_INFO, "profile_info", 8, AFF_NEED_METHOD, AFF_COUNT_FIXED, 8, AFF_FORGET_KEEP},
+	{AFF_SEC_FEATURE_KEYS, "feature_keys", 8, AFF_NEED_METHOD_OPTIONAL, AFF_COUNT_FREE, 0,
+	AFF_FORGET_KEEP},
+	{AFF_SEC_FEATURE_TEXT_OFF, "feature_text_off", 8, AFF_NEED_METHOD_OPTIONAL, AFF_COUNT_FREE, 0,
+	AFF_FORGET_KEEP},
+	{AFF_SEC_FEATURE_TEXT, "feature_text", 1, AFF_NEED_METHOD_OPTIONAL, AFF_COUNT_FREE, 0,
+	AFF_FORGET_KEEP},
+	{AFF_SEC_FEATURE_ITEMS, "feature_items", 4, AFF_NEED_METHOD_OPTIONAL, AFF_COUNT_SAME_AS,
+	AFF_SEC_FEATURE_KEYS, AFF_FORGET_KEEP},
+	{AFF_SEC_PROFILE_PTR, "profile_ptr", 8, AFF_NEED_METHOD_OPTIONAL, AFF_COUNT_ITEMS_PLUS_1, 0,
+	AFF_FORGET_KEEP},
+	{AFF_SEC_PROFILE_FEATURES, "profile_features", 4, AFF_NEED_METHOD_OPTIONAL, AFF_COUNT_FREE, 0,
+	AFF_FORGET_KEEP},
+	{AFF_SEC_PROFILE_VALUES, "profile_values", 4, AFF_NEED_METHOD_OPTIONAL, AFF_COUNT_SAME_AS,
+	AFF_SEC_PROFILE_FEATURES, AFF_FORGET_KEEP},
+	{AFF_SEC_PROFILE_VECTORS, "profile_vectors", 4, AFF_NEED_METHOD_OPTIONAL, AFF_COUNT_FREE, 0,
+	AFF_FORGET_KEEP},
 };
 
 size_t
@@ -99,6 +117,8 @@ aff_section_expected_count(const AffSectionDef *d, const AffModelHeader *h,
 			return (uint64_t) h->nnz;
 		case AFF_COUNT_SAME_AS:
 			return counts[d->same_as];
+		case AFF_COUNT_FIXED:
+			return (uint64_t) d->same_as;
 		case AFF_COUNT_FREE:
 			break;
 	}
@@ -401,6 +421,8 @@ section_need(const AffSectionDef *d, const AffMethod *meth, const AffModelHeader
 			return listed ? 1 : -1;
 		case AFF_NEED_METHOD_ALLOW_ANY:
 			return listed ? 1 : 0;
+		case AFF_NEED_METHOD_OPTIONAL:
+			return listed ? 0 : -1;
 	}
 	return -1;
 }
@@ -492,7 +514,9 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 		return corrupt(err, "Unknown method code %llu.", h->method, 0);
 	if (h->key_type != AFF_KEYS_BIGINT && h->key_type != AFF_KEYS_TEXT)
 		return corrupt(err, "Unknown key type code %llu.", h->key_type, 0);
-	if (h->n_users < 1 || h->n_items < 1 || h->nnz < 1 ||
+	/* a catalogue value (item content) has no users and no training pairs */
+	if ((meth->catalogue ? h->n_users != 0 || h->nnz != 0 : h->n_users < 1 || h->nnz < 1) ||
+		h->n_items < 1 ||
 		h->n_users > AFF_MAX_ENTITIES || h->n_items > AFF_MAX_ENTITIES)
 		return corrupt(err, "Bad counts: %llu users, %llu items.",
 					   (uint64_t) h->n_users, (uint64_t) h->n_items);
@@ -738,6 +762,12 @@ check_content(const AffModelView *v, Poller *p, AffError *err)
 			if (poll_due(p, 8 + 8 * (uint64_t) (v->neighbor_ptr[j + 1] - v->neighbor_ptr[j])))
 				return poller_cancelled(err);
 		}
+	}
+	{
+		const AffMethod *meth = aff_method_by_code(h->method);
+
+		if (meth->check_content != NULL)
+			return meth->check_content(v, p->fn, p->arg, err);
 	}
 	return check_options(h, err);
 }

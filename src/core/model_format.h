@@ -55,7 +55,17 @@
 #define AFF_SEC_USER_TEXT		16	/* bytes: the users' text keys, back to back */
 #define AFF_SEC_ITEM_TEXT_OFF	17	/* int64 [n_items + 1] */
 #define AFF_SEC_ITEM_TEXT		18	/* bytes */
-#define AFF_SEC_MAX				18
+/* item_profiles (profiles.h): which of them a value holds, profile_info says */
+#define AFF_SEC_PROFILE_INFO	19	/* int64 [8]: kind, normalisation, counts */
+#define AFF_SEC_FEATURE_KEYS	20	/* int64 [features] SipHash keys, strictly ascending */
+#define AFF_SEC_FEATURE_TEXT_OFF 21 /* int64 [features + 1] */
+#define AFF_SEC_FEATURE_TEXT	22	/* bytes: the feature texts, back to back */
+#define AFF_SEC_FEATURE_ITEMS	23	/* int32 [features] items holding each (df) */
+#define AFF_SEC_PROFILE_PTR		24	/* int64 [n_items + 1] CSR offsets */
+#define AFF_SEC_PROFILE_FEATURES 25 /* int32 [nonzeros] feature indices, ascending per item */
+#define AFF_SEC_PROFILE_VALUES	26	/* float [nonzeros] values after normalisation */
+#define AFF_SEC_PROFILE_VECTORS 27	/* float [n_items * dimension] dense rows */
+#define AFF_SEC_MAX				27
 
 typedef struct AffModelHeader
 {
@@ -164,7 +174,9 @@ typedef enum AffSectionNeed
 	AFF_NEED_ALL,				/* every model */
 	AFF_NEED_TEXT,				/* models with text keys (and only those) */
 	AFF_NEED_METHOD,			/* the methods whose AffMethod.sections list it */
-	AFF_NEED_METHOD_ALLOW_ANY	/* as METHOD, but any model may carry it */
+	AFF_NEED_METHOD_ALLOW_ANY,	/* as METHOD, but any model may carry it */
+	AFF_NEED_METHOD_OPTIONAL	/* only the methods listing it may carry it; their
+								 * check_content says when it is needed */
 } AffSectionNeed;
 
 typedef enum AffSectionCount
@@ -178,7 +190,8 @@ typedef enum AffSectionCount
 	AFF_COUNT_ITEMS_SQUARED,	/* n_items^2 */
 	AFF_COUNT_NNZ,				/* nnz */
 	AFF_COUNT_FREE,				/* any count (content checks bound it) */
-	AFF_COUNT_SAME_AS			/* the count of section same_as */
+	AFF_COUNT_SAME_AS,			/* the count of section same_as */
+	AFF_COUNT_FIXED				/* exactly same_as elements */
 } AffSectionCount;
 
 typedef enum AffSectionForget
@@ -199,7 +212,7 @@ typedef struct AffSectionDef
 	uint32_t	elem_size;
 	AffSectionNeed need;
 	AffSectionCount count;
-	int			same_as;		/* AFF_COUNT_SAME_AS: that kind */
+	int			same_as;		/* AFF_COUNT_SAME_AS: that kind; AFF_COUNT_FIXED: the count */
 	AffSectionForget forget;
 } AffSectionDef;
 

@@ -125,6 +125,10 @@ extern const AffMethod *model_method(const AffModelView *v);
 extern void serve_context(CachedModel *e, AffServe *s, AffAllocator *a, int needs);
 extern void describe_options(StringInfo s, const AffModelHeader *h);
 
+/* Item profiles (profiles.c) */
+extern void refuse_catalogue(const AffModelView *v, const char *fn) pg_attribute_noreturn();
+extern void check_catalogue_call(FunctionCallInfo fcinfo, const AffModelView *v);
+
 /* jsonb assembly (serving.c) */
 extern Jsonb *jsonb_from_cstring(const char *s);
 

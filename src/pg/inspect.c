@@ -211,6 +211,18 @@ describe_sections(StringInfo s, const AffModelHeader *h, const AffSection *table
 	appendStringInfoString(s, "}");
 }
 
+/* The method's own figures (item_profiles: features, non-zeros, normalisation). */
+static void
+describe_method(StringInfo s, FunctionCallInfo fcinfo, const AffMethod *meth)
+{
+	AffModelView v;
+	char		buf[1024];
+
+	model_fetch(fcinfo, 0, &v);
+	meth->describe(&v, buf, sizeof(buf));
+	appendStringInfo(s, ", %s", buf);
+}
+
 PG_FUNCTION_INFO_V1(affinity_describe);
 
 /* describe(model) -> jsonb, from the header and per-sweep arrays only */
@@ -244,6 +256,12 @@ affinity_describe(PG_FUNCTION_ARGS)
 	append_doubles(&s, "loss", loss, loss ? n_sweeps : 0);
 	append_doubles(&s, "sweep_seconds", secs, secs ? n_sweeps : 0);
 	describe_sections(&s, h, table);
+	{
+		const AffMethod *meth = aff_method_by_code(h->method);
+
+		if (meth != NULL && meth->describe != NULL)
+			describe_method(&s, fcinfo, meth);
+	}
 	appendStringInfo(&s, ", \"fit_seconds\": %s, \"peak_memory_bytes\": " INT64_FORMAT
 					 ", \"size_bytes\": " UINT64_FORMAT
 					 ", \"checksum\": \"%016llx\", \"fingerprint\": \"%016llx\"}",

@@ -703,6 +703,8 @@ affinity_ranking_metrics_finalfn(PG_FUNCTION_ARGS)
 	m = (struct varlena *) PG_DETOAST_DATUM_COPY(PointerGetDatum(st->model));
 	if (aff_model_view((const uint8 *) m, VARSIZE(m), &v, &err) != AFF_OK)
 		report_engine_error(&err);
+	if (model_method(&v)->catalogue)
+		refuse_catalogue(&v, "ranking_metrics");
 	if (model_side_text(&v, true) != st->user_text || model_side_text(&v, false) != st->item_text)
 		ereport(ERROR,
 				(errcode(ERRCODE_DATATYPE_MISMATCH),

@@ -288,6 +288,7 @@ model_get(FunctionCallInfo fcinfo, int argno)
 	}
 	e->last_used = ++use_clock;
 	trim(e);
+	check_catalogue_call(fcinfo, &e->view);
 	return e;
 }
 

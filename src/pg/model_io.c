@@ -192,6 +192,10 @@ check_text_keys(const AffModelView *view, bool built)
 	int64		index;
 	bool		nul;
 
+	if (view->sections[AFF_SEC_FEATURE_TEXT_OFF] != NULL &&
+		!text_keys_valid(view->sections[AFF_SEC_FEATURE_TEXT_OFF], view->sections[AFF_SEC_FEATURE_TEXT],
+						 (int64) view->counts[AFF_SEC_FEATURE_TEXT_OFF] - 1, &index, &nul))
+		report_bad_text_key("feature", index, nul, built);
 	if (view->h->key_type != AFF_KEYS_TEXT)
 		return;
 	if (!text_keys_valid(view->user_text_off, view->user_text, view->h->n_users, &index, &nul))

@@ -19,6 +19,8 @@
 #include "utils/builtins.h"
 #include "utils/numeric.h"
 
+#include "../core/profiles.h"
+
 static void
 defaults(FitOptions *o)
 {
@@ -39,6 +41,8 @@ defaults(FitOptions *o)
 	o->epsilon = 1.0;
 	o->seed = 42;
 	o->verbose = affinity_verbose;
+	o->normalization = AFF_NORM_L2;
+	o->min_document_frequency = 1;
 }
 
 static void

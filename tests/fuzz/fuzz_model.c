@@ -342,8 +342,8 @@ walk_serving(const AffModelView *v)
 		}
 	}
 
-	/* baskets for a user the model has not seen */
-	if (solves)
+	/* baskets for a user the model has not seen (a catalogue value has no basket scores) */
+	if (solves && meth->basket_scores != NULL)
 	{
 		basket[0] = 0;
 		bw[0] = 1;

@@ -69,6 +69,9 @@ SEC = {
     10: ("sweep_seconds", "d"), 11: ("item_weights", "f"), 12: ("neighbor_ptr", "q"),
     13: ("neighbor_idx", "i"), 14: ("neighbor_sim", "f"), 15: ("user_text_off", "q"),
     16: ("user_text", "B"), 17: ("item_text_off", "q"), 18: ("item_text", "B"),
+    19: ("profile_info", "q"), 20: ("feature_keys", "q"), 21: ("feature_text_off", "q"),
+    22: ("feature_text", "B"), 23: ("feature_items", "i"), 24: ("profile_ptr", "q"),
+    25: ("profile_features", "i"), 26: ("profile_values", "f"), 27: ("profile_vectors", "f"),
 }
 KIND = {name: k for k, (name, _) in SEC.items()}
 METHOD = {"implicit_als": 1, "popularity": 2, "ease": 3, "item_knn": 4}
@@ -638,6 +641,15 @@ SELECT decode(affinity.fit(u, i, 1, {opts})::text, 'base64')
 FROM (VALUES ('-9223372036854775808'::bigint, '9223372036854775807'::bigint),
              ('9223372036854775807', '-9223372036854775808'), (0, 0)) v(u, i)""",
      '{"factors": 3, "iterations": 2, "threads": 1}'),
+    ("profiles_words", """
+SELECT decode(affinity.item_profiles(i, 'w' || (i * f) % 7, f::real, {opts})::text, 'base64')
+FROM generate_series(1, 9) i, generate_series(1, 3) f""", '{"normalization": "tfidf"}'),
+    ("profiles_text", """
+SELECT decode(affinity.item_profiles('SKU-' || i, 'w' || (i + f) % 5, 1, {opts})::text, 'base64')
+FROM generate_series(1, 6) i, generate_series(1, 2) f""", '{"min_document_frequency": 2}'),
+    ("profiles_vectors", """
+SELECT decode(affinity.item_profiles(i, ARRAY[i, 1 - i, i % 3]::real[], {opts})::text, 'base64')
+FROM generate_series(0, 7) i""", '{"normalization": "none"}'),
     ("popularity_wide", """
 SELECT decode(affinity.fit(u, i, 1, {opts})::text, 'base64')
 FROM generate_series(1, 30) u, generate_series(1, 30) i WHERE (u * i) % 7 = 1""",
