@@ -69,7 +69,8 @@ affinity_top_items_for_all(PG_FUNCTION_ARGS)
 		return (Datum) 0;
 	model_fetch(fcinfo, 0, &v);
 	(void) model_method(&v);
-	check_output_keys(fcinfo, &v, 0);
+	check_output_keys(fcinfo, &v, 0, true);
+	check_output_keys(fcinfo, &v, 1, false);
 	k = get_k(fcinfo, 1, v.h->n_items);
 	require_arg(fcinfo, 2, "exclude_seen");
 	if (k == 0)

@@ -128,7 +128,7 @@ affinity_top_items(PG_FUNCTION_ARGS)
 	e = model_get(fcinfo, 0);
 	v = &e->view;
 	meth = model_method(v);
-	check_output_keys(fcinfo, v, 0);
+	check_output_keys(fcinfo, v, 0, false);
 	k = get_k(fcinfo, 2, v->h->n_items);
 	require_arg(fcinfo, 3, "exclude_seen");
 	require_arg(fcinfo, 6, "fallback_popular");
@@ -172,7 +172,7 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 			 int argno_w, int32 **idx_out, float **w_out)
 {
 	ArrayType  *b = PG_GETARG_ARRAYTYPE_P(argno_b);
-	bool		text_call = ARR_ELEMTYPE(b) == TEXTOID;
+	bool		text_call = require_array_keys(fcinfo, argno_b, v, false);
 	Datum	   *be;
 	bool	   *bn;
 	int			nb;
@@ -185,12 +185,6 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 	int			n = 0;
 	int			i;
 
-	if ((v->h->key_type == AFF_KEYS_TEXT) != text_call)
-	{
-		int			dummy;
-
-		(void) array_key_indices(fcinfo, argno_b, v, false, &dummy);	/* raises the mismatch */
-	}
 	if (text_call)
 		deconstruct_array(b, TEXTOID, -1, false, TYPALIGN_INT, &be, &bn, &nb);
 	else
@@ -224,14 +218,7 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 		}
 		if (bn[i] || wi == 0)
 			continue;
-		if (text_call)
-		{
-			text	   *t = DatumGetTextPP(be[i]);
-
-			j = text_key_index(v, false, VARDATA_ANY(t), VARSIZE_ANY_EXHDR(t));
-		}
-		else
-			j = aff_find_key(v->item_keys, v->h->n_items, DatumGetInt64(be[i]));
+		j = key_elem_index(v, false, be[i], text_call);
 		if (j < 0)
 			continue;
 		if (acc[j] == 0)
@@ -304,7 +291,7 @@ affinity_top_items_basket(PG_FUNCTION_ARGS)
 	e = model_get(fcinfo, 0);
 	v = &e->view;
 	meth = model_method(v);
-	check_output_keys(fcinfo, v, 0);
+	check_output_keys(fcinfo, v, 0, false);
 	k = get_k(fcinfo, 2, v->h->n_items);
 	require_arg(fcinfo, 4, "exclude_seen");
 	if (k == 0)
@@ -359,7 +346,7 @@ affinity_items_like(PG_FUNCTION_ARGS)
 	e = model_get(fcinfo, 0);
 	v = &e->view;
 	meth = model_method(v);
-	check_output_keys(fcinfo, v, 0);
+	check_output_keys(fcinfo, v, 0, false);
 	if (meth->item_row == NULL)
 		require_factors(v, "items_like");
 	k = get_k(fcinfo, 2, v->h->n_items);
@@ -406,7 +393,7 @@ affinity_users_like(PG_FUNCTION_ARGS)
 				 errdetail("This model was fitted with method \"%s\".",
 						   aff_method_name(v->h->method)),
 				 errhint("Fit with method \"implicit_als\".")));
-	check_output_keys(fcinfo, v, 0);
+	check_output_keys(fcinfo, v, 0, true);
 	k = get_k(fcinfo, 2, v->h->n_users);
 	u = key_arg_index(fcinfo, 1, v, true);
 	if (u < 0 || k == 0)
@@ -480,7 +467,7 @@ affinity_reasons(PG_FUNCTION_ARGS)
 				 errmsg("reasons needs a personalised model"),
 				 errdetail("A popularity model ranks by buyer counts alone."),
 				 errhint("Fit with method \"implicit_als\", \"ease\" or \"item_knn\".")));
-	check_output_keys(fcinfo, v, 0);
+	check_output_keys(fcinfo, v, 0, false);
 	k = get_k(fcinfo, 3, v->h->nnz);
 	u = key_arg_index(fcinfo, 1, v, true);
 	i = key_arg_index(fcinfo, 2, v, false);

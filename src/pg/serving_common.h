@@ -27,7 +27,11 @@ extern Datum key_datum(const AffModelView *v, bool users, int64 i);
 extern char *key_cstring(const AffModelView *v, bool users, int64 i);
 extern void check_finite_scores(const AffModelView *v, bool users, int64 bad,
 								const char *request);
-extern void check_output_keys(FunctionCallInfo fcinfo, const AffModelView *v, int attno);
+extern void check_output_keys(FunctionCallInfo fcinfo, const AffModelView *v, int attno,
+							  bool users);
+extern bool require_array_keys(FunctionCallInfo fcinfo, int argno, const AffModelView *v,
+							   bool users);
+extern int64 key_elem_index(const AffModelView *v, bool users, Datum d, bool text_call);
 extern ArrayType *vector_array(const float *x, int f);
 extern void user_scores(const AffModelView *v, int64 u, float *scores);
 
