@@ -157,13 +157,18 @@ SELECT affinity.define_model('float_ids',
   'SELECT customer AS user_id, product::float8 AS item_id, qty AS weight FROM reg_codes');
 SELECT affinity.define_model('date_ids',
   'SELECT current_date AS user_id, product AS item_id, qty AS weight FROM reg_codes');
--- mixed pairs are refused, naming the cast
+SELECT count(*) AS refused_models_absent FROM affinity.models
+WHERE name IN ('numeric_ids', 'float_ids', 'date_ids');
+-- mixed pairs are models of their own key types (bigint users with text
+-- items, text users with bigint items); a model never fitted may change them
 SELECT affinity.define_model('mixed',
   'SELECT customer AS user_id, sku AS item_id, qty AS weight FROM reg_codes');
+SELECT key_types FROM affinity.models WHERE name = 'mixed';
 SELECT affinity.define_model('mixed',
   'SELECT customer_ref AS user_id, product AS item_id, qty AS weight FROM reg_codes');
-SELECT count(*) AS refused_models_absent FROM affinity.models
-WHERE name IN ('numeric_ids', 'float_ids', 'date_ids', 'mixed');
+SELECT r->'key_types' AS key_types FROM affinity.refresh('mixed') r;
+SELECT affinity.model_key_types(affinity.get_model('mixed')) AS model_keys;
+DELETE FROM affinity.models WHERE name = 'mixed';
 -- a refresh whose query now yields other key types is refused; the current
 -- model stays
 SELECT version AS before, affinity.describe(model)->>'checksum' AS checksum FROM affinity.models WHERE name = 'codes' \gset

@@ -94,8 +94,58 @@ extern int	aff_mul_overflows(size_t a, size_t b, size_t *result);
 #define AFF_CONFIDENCE_LINEAR	1
 #define AFF_CONFIDENCE_LOG		2
 
-#define AFF_KEYS_BIGINT			1
-#define AFF_KEYS_TEXT			2
+/*
+ * Key types, per side (user keys, item keys).  1 and 2 are the one-type
+ * models of 1.1 and 1.2; the mixed pairs came with 1.3.
+ */
+#define AFF_KEYS_BIGINT			1	/* bigint users, bigint items */
+#define AFF_KEYS_TEXT			2	/* text users, text items */
+#define AFF_KEYS_BIGINT_TEXT	3	/* bigint users, text items */
+#define AFF_KEYS_TEXT_BIGINT	4	/* text users, bigint items */
+
+/* Whether key_type is one of the codes above. */
+static inline int
+aff_keys_valid(int key_type)
+{
+	return key_type >= AFF_KEYS_BIGINT && key_type <= AFF_KEYS_TEXT_BIGINT;
+}
+
+/* Whether the user side (users != 0) or the item side of key_type is text. */
+static inline int
+aff_keys_side_text(int key_type, int users)
+{
+	return users ? (key_type == AFF_KEYS_TEXT || key_type == AFF_KEYS_TEXT_BIGINT)
+		: (key_type == AFF_KEYS_TEXT || key_type == AFF_KEYS_BIGINT_TEXT);
+}
+
+/* The key type of a model with these sides. */
+static inline int
+aff_keys_code(int user_text, int item_text)
+{
+	return user_text ? (item_text ? AFF_KEYS_TEXT : AFF_KEYS_TEXT_BIGINT)
+		: (item_text ? AFF_KEYS_BIGINT_TEXT : AFF_KEYS_BIGINT);
+}
+
+/*
+ * The name of a key type: "bigint" or "text" for one type on both sides,
+ * "bigint,text" or "text,bigint" (user type first) for the mixed pairs.
+ */
+static inline const char *
+aff_keys_name(int key_type)
+{
+	switch (key_type)
+	{
+		case AFF_KEYS_BIGINT:
+			return "bigint";
+		case AFF_KEYS_TEXT:
+			return "text";
+		case AFF_KEYS_BIGINT_TEXT:
+			return "bigint,text";
+		case AFF_KEYS_TEXT_BIGINT:
+			return "text,bigint";
+	}
+	return "unknown";
+}
 
 /* Largest factor count the engine accepts (keeps per-row scratch small). */
 #define AFF_MAX_FACTORS			1024

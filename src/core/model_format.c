@@ -52,12 +52,12 @@ const AffSectionDef aff_section_defs[AFF_SEC_MAX + 1] = {
 	{AFF_SEC_NEIGHBOR_IDX, "neighbor_idx", 4, AFF_NEED_METHOD, AFF_COUNT_FREE, 0, AFF_FORGET_KEEP},
 	{AFF_SEC_NEIGHBOR_SIM, "neighbor_sim", 4, AFF_NEED_METHOD, AFF_COUNT_SAME_AS,
 	AFF_SEC_NEIGHBOR_IDX, AFF_FORGET_KEEP},
-	{AFF_SEC_USER_TEXT_OFF, "user_text_off", 8, AFF_NEED_TEXT, AFF_COUNT_USERS_PLUS_1, 0,
+	{AFF_SEC_USER_TEXT_OFF, "user_text_off", 8, AFF_NEED_USER_TEXT, AFF_COUNT_USERS_PLUS_1, 0,
 	AFF_FORGET_CUT_OFFSETS},
-	{AFF_SEC_USER_TEXT, "user_text", 1, AFF_NEED_TEXT, AFF_COUNT_FREE, 0, AFF_FORGET_CUT_TEXT},
-	{AFF_SEC_ITEM_TEXT_OFF, "item_text_off", 8, AFF_NEED_TEXT, AFF_COUNT_ITEMS_PLUS_1, 0,
+	{AFF_SEC_USER_TEXT, "user_text", 1, AFF_NEED_USER_TEXT, AFF_COUNT_FREE, 0, AFF_FORGET_CUT_TEXT},
+	{AFF_SEC_ITEM_TEXT_OFF, "item_text_off", 8, AFF_NEED_ITEM_TEXT, AFF_COUNT_ITEMS_PLUS_1, 0,
 	AFF_FORGET_KEEP},
-	{AFF_SEC_ITEM_TEXT, "item_text", 1, AFF_NEED_TEXT, AFF_COUNT_FREE, 0, AFF_FORGET_KEEP},
+	{AFF_SEC_ITEM_TEXT, "item_text", 1, AFF_NEED_ITEM_TEXT, AFF_COUNT_FREE, 0, AFF_FORGET_KEEP},
 	/* item_profiles: its check_content checks the free counts and the content */
 	{AFF_SEC_PROFILE_INFO, "profile_info", 8, AFF_NEED_METHOD, AFF_COUNT_FIXED, 8, AFF_FORGET_KEEP},
 	{AFF_SEC_FEATURE_KEYS, "feature_keys", 8, AFF_NEED_METHOD_OPTIONAL, AFF_COUNT_FREE, 0,
@@ -415,8 +415,10 @@ section_need(const AffSectionDef *d, const AffMethod *meth, const AffModelHeader
 	{
 		case AFF_NEED_ALL:
 			return 1;
-		case AFF_NEED_TEXT:
-			return h->key_type == AFF_KEYS_TEXT ? 1 : -1;
+		case AFF_NEED_USER_TEXT:
+			return aff_keys_side_text(h->key_type, 1) ? 1 : -1;
+		case AFF_NEED_ITEM_TEXT:
+			return aff_keys_side_text(h->key_type, 0) ? 1 : -1;
 		case AFF_NEED_METHOD:
 			return listed ? 1 : -1;
 		case AFF_NEED_METHOD_ALLOW_ANY:
@@ -512,7 +514,7 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 
 	if ((meth = aff_method_by_code(h->method)) == NULL)
 		return corrupt(err, "Unknown method code %llu.", h->method, 0);
-	if (h->key_type != AFF_KEYS_BIGINT && h->key_type != AFF_KEYS_TEXT)
+	if (!aff_keys_valid(h->key_type))
 		return corrupt(err, "Unknown key type code %llu.", h->key_type, 0);
 	/* a catalogue value (item content) has no users and no training pairs */
 	if ((meth->catalogue ? h->n_users != 0 || h->nnz != 0 : h->n_users < 1 || h->nnz < 1) ||
@@ -544,8 +546,7 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 			{
 				aff_fail(err, AFF_ERR_CORRUPT, "invalid affinity.model value");
 				return aff_detail(err, "The value has no \"%s\" section, which a model of method \"%s\" with %s keys needs.",
-								  d->name, meth->name,
-								  h->key_type == AFF_KEYS_TEXT ? "text" : "bigint");
+								  d->name, meth->name, aff_keys_name(h->key_type));
 			}
 			continue;
 		}
@@ -716,13 +717,16 @@ check_content(const AffModelView *v, Poller *p, AffError *err)
 						   (uint64_t) bad % f, (uint64_t) bad / f);
 	}
 	/* each side's texts are hashed in one call, a poll after each */
-	if (h->key_type == AFF_KEYS_TEXT)
+	if (aff_keys_side_text(h->key_type, 1))
 	{
 		if (aff_check_text_keys(h->text_hash_key, v->user_keys, h->n_users, v->user_text_off,
 								v->user_text, v->user_text_len, "user", err) != AFF_OK)
 			return err->status;
 		if (poll_due(p, AFF_POLL_BYTES))
 			return poller_cancelled(err);
+	}
+	if (aff_keys_side_text(h->key_type, 0))
+	{
 		if (aff_check_text_keys(h->text_hash_key, v->item_keys, h->n_items, v->item_text_off,
 								v->item_text, v->item_text_len, "item", err) != AFF_OK)
 			return err->status;

@@ -172,7 +172,8 @@ typedef struct AffModelParts
 typedef enum AffSectionNeed
 {
 	AFF_NEED_ALL,				/* every model */
-	AFF_NEED_TEXT,				/* models with text keys (and only those) */
+	AFF_NEED_USER_TEXT,			/* models with text user keys (and only those) */
+	AFF_NEED_ITEM_TEXT,			/* models with text item keys (and only those) */
 	AFF_NEED_METHOD,			/* the methods whose AffMethod.sections list it */
 	AFF_NEED_METHOD_ALLOW_ANY,	/* as METHOD, but any model may carry it */
 	AFF_NEED_METHOD_OPTIONAL	/* only the methods listing it may carry it; their

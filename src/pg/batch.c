@@ -129,7 +129,7 @@ unknown_users(FunctionCallInfo fcinfo, int argno, const AffModelView *v, int *n)
 	else
 		deconstruct_array(arr, INT8OID, 8, true, TYPALIGN_DOUBLE, &elems, &nulls, &ne);
 	for (i = 0; i < ne; i++)
-		if (!nulls[i] && elem_key_index(v, true, text_call, elems[i]) < 0)
+		if (!nulls[i] && key_elem_index(v, true, elems[i], text_call) < 0)
 			elems[out++] = elems[i];
 	qsort(elems, out, sizeof(Datum), text_call ? cmp_text_datum : cmp_int64_datum);
 	*n = 0;
@@ -215,7 +215,8 @@ top_items_for_all(FunctionCallInfo fcinfo, const BatchArgs *ba)
 	if (PG_ARGISNULL(0))
 		return (Datum) 0;
 	model_fetch(fcinfo, 0, &v);
-	check_output_keys(fcinfo, &v, 0);
+	check_output_keys(fcinfo, &v, 0, true);
+	check_output_keys(fcinfo, &v, 1, false);
 	k = get_k(fcinfo, ba->k, v.h->n_items);
 	require_arg(fcinfo, ba->exclude_seen, "exclude_seen");
 	if (ba->fallback >= 0)

@@ -21,12 +21,15 @@
  *
  * Text keys are hashed under a random key per state (text_keys.c); states
  * of parallel workers each have their own, so combine re-keys the other
- * state's texts and remaps its rows.
+ * state's texts and remaps its rows.  A side of bigint keys (a mixed fit:
+ * bigint users with text items, or text users with bigint items) keeps its
+ * keys as they are: its dictionary stays empty and no re-key touches it.
  */
 #include "affinity_pg.h"
 
 #include <math.h>
 
+#include "catalog/pg_type.h"
 #include "libpq/pqformat.h"
 #include "miscadmin.h"
 #include "port.h"
@@ -49,8 +52,11 @@ typedef struct FitState
 	int64		rows_zero;
 	bool		have_options;
 	FitOptions	opts;
-	bool		text_keys;		/* fed by the text overload */
-	TextDict   *user_texts;		/* text keys seen, when text_keys */
+	bool		text_keys;		/* fed by an overload with a text side */
+	bool		user_text;		/* when text_keys: the user side is text */
+	bool		item_text;		/* when text_keys: the item side is text */
+	TextDict   *user_texts;		/* text keys seen, when text_keys (empty */
+	/* for a bigint side) */
 	TextDict   *item_texts;
 	uint64		text_hash_key[2];	/* the texts' hash key, when text_keys */
 	Size		text_memory;	/* bytes the two dictionaries hold */
@@ -229,11 +235,16 @@ draw_hash_key(uint64 key[2])
 	} while (key[0] == 0 && key[1] == 0);
 }
 
-/* The first text row of a state: dictionaries and their hash key. */
+/*
+ * The first row of a state fed by an overload with a text side: which
+ * sides are text, the dictionaries and their hash key.
+ */
 static void
-start_text_keys(FitState *st)
+start_text_keys(FitState *st, bool user_text, bool item_text)
 {
 	st->text_keys = true;
+	st->user_text = user_text;
+	st->item_text = item_text;
 	st->user_texts = text_dict_create(st->cxt);
 	st->item_texts = text_dict_create(st->cxt);
 	draw_hash_key(st->text_hash_key);
@@ -241,7 +252,8 @@ start_text_keys(FitState *st)
 
 /*
  * Rows' text keys after a re-key or a merge: each old key becomes the key
- * its dictionary recorded for it (text_dict_mapped).  O(rows).
+ * its dictionary recorded for it (text_dict_mapped).  users or items is
+ * NULL for a side of bigint keys, which stay as they are.  O(rows).
  */
 static void
 remap_rows(AffTriple *rows, int64 n, TextDict *users, TextDict *items)
@@ -255,13 +267,17 @@ remap_rows(AffTriple *rows, int64 n, TextDict *users, TextDict *items)
 		if ((i & 0xffff) == 0xffff)
 			CHECK_FOR_INTERRUPTS();
 		/* rows arrive grouped by user more often than not */
-		if (i == 0 || rows[i].user != last_old)
+		if (users != NULL)
 		{
-			last_old = rows[i].user;
-			last_new = text_dict_mapped(users, last_old);
+			if (i == 0 || rows[i].user != last_old)
+			{
+				last_old = rows[i].user;
+				last_new = text_dict_mapped(users, last_old);
+			}
+			rows[i].user = last_new;
 		}
-		rows[i].user = last_new;
-		rows[i].item = text_dict_mapped(items, rows[i].item);
+		if (items != NULL)
+			rows[i].item = text_dict_mapped(items, rows[i].item);
 	}
 }
 
@@ -288,7 +304,8 @@ rekey_texts(FitState *st)
 			break;
 		text_dict_rekey_abort(st->user_texts);
 	}
-	remap_rows(st->rows, st->n_rows, st->user_texts, st->item_texts);
+	remap_rows(st->rows, st->n_rows, st->user_text ? st->user_texts : NULL,
+			   st->item_text ? st->item_texts : NULL);
 	text_dict_rekey_finish(st->user_texts);
 	text_dict_rekey_finish(st->item_texts);
 	st->text_hash_key[0] = key[0];
@@ -388,7 +405,7 @@ affinity_fit_text_transfn(PG_FUNCTION_ARGS)
 		bad_weight(psprintf("\"%s\"", text_to_cstring(u)),
 				   psprintf("\"%s\"", text_to_cstring(i)), w);
 	if (!st->text_keys)
-		start_text_keys(st);
+		start_text_keys(st, true, true);
 	old = MemoryContextSwitchTo(st->cxt);
 	texts = text_dict_count(st->user_texts) + text_dict_count(st->item_texts);
 	for (;;)
@@ -409,6 +426,80 @@ affinity_fit_text_transfn(PG_FUNCTION_ARGS)
 	{
 		count_text_memory(st);
 		check_growing(st);
+	}
+	add_row(st, uk, ik, w);
+	PG_RETURN_POINTER(st);
+}
+
+/*
+ * The int64 key of the text side of a mixed fit's row: its key in dict
+ * under the state's hash key (a collision re-keys the state and its rows,
+ * then the text is added again).
+ */
+static int64
+text_row_key(FitState *st, TextDict *dict, text *t)
+{
+	MemoryContext old = MemoryContextSwitchTo(st->cxt);
+	int64		texts = text_dict_count(dict);
+	int64		key;
+
+	for (;;)
+	{
+		bool		collision;
+
+		key = text_dict_add(dict, st->text_hash_key, VARDATA_ANY(t), VARSIZE_ANY_EXHDR(t),
+							&collision);
+		if (!collision)
+			break;
+		rekey_texts(st);
+	}
+	MemoryContextSwitchTo(old);
+	if (text_dict_count(dict) != texts)
+	{
+		count_text_memory(st);
+		check_growing(st);
+	}
+	return key;
+}
+
+PG_FUNCTION_INFO_V1(affinity_fit_mixed_transfn);
+
+/*
+ * (state, user_id bigint, item_id text, weight [, options]) -> state, and
+ * (state, user_id text, item_id bigint, ...): the argument types say which
+ * side is text.  The bigint side's keys are kept as they are; the text
+ * side's become int64 keys as in affinity_fit_text_transfn.
+ */
+Datum
+affinity_fit_mixed_transfn(PG_FUNCTION_ARGS)
+{
+	FitState   *st;
+	float4		w;
+	bool		user_text = get_fn_expr_argtype(fcinfo->flinfo, 1) == TEXTOID;
+	bool		item_text = get_fn_expr_argtype(fcinfo->flinfo, 2) == TEXTOID;
+	int64		uk;
+	int64		ik;
+
+	if (user_text == item_text)
+		elog(ERROR, "affinity_fit_mixed_transfn needs one bigint and one text key argument");
+	if (take_row(fcinfo, &st, &w) == NULL)
+		PG_RETURN_POINTER(st);
+	if (!(w >= 0) || isinf(w))
+		bad_weight(user_text ? psprintf("\"%s\"", text_to_cstring(PG_GETARG_TEXT_PP(1)))
+				   : psprintf(INT64_FORMAT, PG_GETARG_INT64(1)),
+				   item_text ? psprintf("\"%s\"", text_to_cstring(PG_GETARG_TEXT_PP(2)))
+				   : psprintf(INT64_FORMAT, PG_GETARG_INT64(2)), w);
+	if (!st->text_keys)
+		start_text_keys(st, user_text, item_text);
+	if (user_text)
+	{
+		uk = text_row_key(st, st->user_texts, PG_GETARG_TEXT_PP(1));
+		ik = PG_GETARG_INT64(2);
+	}
+	else
+	{
+		uk = PG_GETARG_INT64(1);
+		ik = text_row_key(st, st->item_texts, PG_GETARG_TEXT_PP(2));
 	}
 	add_row(st, uk, ik, w);
 	PG_RETURN_POINTER(st);
@@ -457,8 +548,8 @@ merge_texts(FitState *a, FitState *b)
 	MemoryContext old;
 	int			tries;
 
-	if (!a->text_keys)
-		start_text_keys(a);
+	if (!a->text_keys || a->user_text != b->user_text || a->item_text != b->item_text)
+		elog(ERROR, "affinity.fit states of different key types combined");
 	old = MemoryContextSwitchTo(a->cxt);
 	for (tries = 0;; tries++)
 	{
@@ -471,7 +562,8 @@ merge_texts(FitState *a, FitState *b)
 		rekey_texts(a);
 	}
 	MemoryContextSwitchTo(old);
-	remap_rows(b->rows, b->n_rows, b->user_texts, b->item_texts);
+	remap_rows(b->rows, b->n_rows, a->user_text ? b->user_texts : NULL,
+			   a->item_text ? b->item_texts : NULL);
 	count_text_memory(a);
 }
 
@@ -511,6 +603,8 @@ affinity_fit_combinefn(PG_FUNCTION_ARGS)
 		check_growing(b);
 		PG_RETURN_POINTER(b);
 	}
+	if (a->text_keys != b->text_keys && b->n_rows > 0)
+		elog(ERROR, "affinity.fit states of different key types combined");
 	merge_counts(a, b);
 	if (b->text_keys)
 		merge_texts(a, b);
@@ -556,7 +650,8 @@ affinity_fit_serialfn(PG_FUNCTION_ARGS)
 	pq_sendint64(&buf, st->n_rows);
 	/* rows as bytes: the state only travels between processes of one server */
 	pq_sendbytes(&buf, (const char *) st->rows, sizeof(AffTriple) * st->n_rows);
-	pq_sendint8(&buf, st->text_keys ? 1 : 0);
+	/* 0: no text side (yet); else the key type code */
+	pq_sendint8(&buf, st->text_keys ? aff_keys_code(st->user_text, st->item_text) : 0);
 	if (st->text_keys)
 	{
 		pq_sendint64(&buf, (int64) st->text_hash_key[0]);
@@ -618,7 +713,15 @@ affinity_fit_deserialfn(PG_FUNCTION_ARGS)
 	if (n > 0)
 		memcpy(st->rows, pq_getmsgbytes(&buf, sizeof(AffTriple) * n), sizeof(AffTriple) * n);
 	st->n_rows = n;
-	st->text_keys = pq_getmsgbyte(&buf) != 0;
+	{
+		int			kt = pq_getmsgbyte(&buf);
+
+		if (kt != 0 && (!aff_keys_valid(kt) || kt == AFF_KEYS_BIGINT))
+			elog(ERROR, "invalid serialized affinity.fit state");
+		st->text_keys = kt != 0;
+		st->user_text = aff_keys_side_text(kt, true);
+		st->item_text = aff_keys_side_text(kt, false);
+	}
 	if (st->text_keys)
 	{
 		st->text_hash_key[0] = (uint64) pq_getmsgint64(&buf);
@@ -717,13 +820,17 @@ fill_header(AffModelParts *parts, const FitState *st, const AffMatrix *m)
 {
 	AffModelHeader *h = &parts->h;
 
-	aff_fit_header(parts, &st->opts, m, st->text_keys ? AFF_KEYS_TEXT : AFF_KEYS_BIGINT);
+	aff_fit_header(parts, &st->opts, m,
+				   st->text_keys ? aff_keys_code(st->user_text, st->item_text) : AFF_KEYS_BIGINT);
 	h->rows_read = st->rows_read;
 	h->rows_skipped_null = st->rows_null;
 	h->rows_skipped_zero = st->rows_zero;
 }
 
-/* The text dictionaries of a text-key fit, in the matrix's key order. */
+/*
+ * The text dictionaries of the text sides of a fit, in the matrix's key
+ * order (a bigint side has no text sections).
+ */
 static void
 add_text_sections(FitState *st, const AffMatrix *m, AffModelParts *parts)
 {
@@ -731,11 +838,16 @@ add_text_sections(FitState *st, const AffMatrix *m, AffModelParts *parts)
 	char	   *bytes;
 	uint64		len;
 
-	text_dict_layout(st->user_texts, m->user_keys, m->n_users, &off, &bytes, &len);
-	parts->data[AFF_SEC_USER_TEXT_OFF] = off;
-	parts->count[AFF_SEC_USER_TEXT_OFF] = m->n_users + 1;
-	parts->data[AFF_SEC_USER_TEXT] = bytes;
-	parts->count[AFF_SEC_USER_TEXT] = len;
+	if (st->user_text)
+	{
+		text_dict_layout(st->user_texts, m->user_keys, m->n_users, &off, &bytes, &len);
+		parts->data[AFF_SEC_USER_TEXT_OFF] = off;
+		parts->count[AFF_SEC_USER_TEXT_OFF] = m->n_users + 1;
+		parts->data[AFF_SEC_USER_TEXT] = bytes;
+		parts->count[AFF_SEC_USER_TEXT] = len;
+	}
+	if (!st->item_text)
+		return;
 	text_dict_layout(st->item_texts, m->item_keys, m->n_items, &off, &bytes, &len);
 	parts->data[AFF_SEC_ITEM_TEXT_OFF] = off;
 	parts->count[AFF_SEC_ITEM_TEXT_OFF] = m->n_items + 1;

@@ -41,7 +41,7 @@ all_vectors(FunctionCallInfo fcinfo, bool users)
 	if (PG_ARGISNULL(0))
 		return (Datum) 0;
 	model_fetch(fcinfo, 0, &v);
-	check_output_keys(fcinfo, &v, 0);
+	check_output_keys(fcinfo, &v, 0, users);
 	require_factors(&v, users ? "user_vectors" : "item_vectors");
 	/* the text overloads take a list of keys (NULL: all) */
 	if (PG_NARGS() > 1 && !PG_ARGISNULL(1))
@@ -243,7 +243,7 @@ affinity_describe(PG_FUNCTION_ARGS)
 					 "\"users\": " INT64_FORMAT ", \"items\": " INT64_FORMAT
 					 ", \"interactions\": " INT64_FORMAT,
 					 h->version, aff_method_name(h->method),
-					 h->key_type == AFF_KEYS_TEXT ? "text" : "bigint",
+					 aff_keys_name(h->key_type),
 					 h->n_users, h->n_items, h->nnz);
 	describe_options(&s, h);
 	appendStringInfo(&s, ", \"rows_read\": " INT64_FORMAT ", \"rows_skipped_null\": " INT64_FORMAT

@@ -478,18 +478,31 @@ cmp_heldout(const void *a, const void *b, void *arg)
 	return cmp_key(st, st->item_text, x->item, y->item);
 }
 
-/*
- * Whether the model's user (or item) keys are text.  The model format has
- * one key type for both sides today; a model of mixed keys answers per side.
- */
+/* Whether the model's user (or item) keys are text. */
 static bool
 model_side_text(const AffModelView *v, bool users)
 {
-	(void) users;
-	return v->h->key_type == AFF_KEYS_TEXT;
+	return aff_keys_side_text(v->h->key_type, users);
 }
 
-/* The model's index of one held-out key, or -1 when it does not know it. */
+/*
+ * Whether the held-out keys' types do not suit the model, by the serving
+ * functions' rule: bigint keys only on a bigint side, text keys on any
+ * model with a text side (a bigint side's keys as decimal text).
+ */
+static bool
+held_out_mismatch(const AffModelView *v, const MetricsState *st)
+{
+	if (v->h->key_type == AFF_KEYS_BIGINT)
+		return st->user_text || st->item_text;
+	return (!st->user_text && model_side_text(v, true)) ||
+		(!st->item_text && model_side_text(v, false));
+}
+
+/*
+ * The model's index of one held-out key, or -1 when it does not know it
+ * (a text key on a bigint side: text_key_lookup).
+ */
 static int64
 key_index(const MetricsState *st, const AffModelView *v, bool users, int64 key)
 {
@@ -498,7 +511,7 @@ key_index(const MetricsState *st, const AffModelView *v, bool users, int64 key)
 		int32		len;
 		const char *s = arena_text(st, key, &len);
 
-		return text_key_index(v, users, s, len);
+		return text_key_lookup(v, users, s, len);
 	}
 	return aff_find_key(users ? v->user_keys : v->item_keys,
 						users ? v->h->n_users : v->h->n_items, key);
@@ -705,7 +718,7 @@ affinity_ranking_metrics_finalfn(PG_FUNCTION_ARGS)
 		report_engine_error(&err);
 	if (model_method(&v)->catalogue)
 		refuse_catalogue(&v, "ranking_metrics");
-	if (model_side_text(&v, true) != st->user_text || model_side_text(&v, false) != st->item_text)
+	if (held_out_mismatch(&v, st))
 		ereport(ERROR,
 				(errcode(ERRCODE_DATATYPE_MISMATCH),
 				 errmsg("this model has %s user ids and %s item ids, but ranking_metrics was given %s and %s",

@@ -185,7 +185,7 @@ report_bad_text_key(const char *what, int64 index, bool nul, bool built)
 			 errhint("Text keys are stored in the database encoding; a value made in a database of another encoding has to be fitted again here.")));
 }
 
-/* The text checks of a validated view (nothing for bigint keys). */
+/* The text checks of a validated view, for each side with text keys. */
 static void
 check_text_keys(const AffModelView *view, bool built)
 {
@@ -196,11 +196,11 @@ check_text_keys(const AffModelView *view, bool built)
 		!text_keys_valid(view->sections[AFF_SEC_FEATURE_TEXT_OFF], view->sections[AFF_SEC_FEATURE_TEXT],
 						 (int64) view->counts[AFF_SEC_FEATURE_TEXT_OFF] - 1, &index, &nul))
 		report_bad_text_key("feature", index, nul, built);
-	if (view->h->key_type != AFF_KEYS_TEXT)
-		return;
-	if (!text_keys_valid(view->user_text_off, view->user_text, view->h->n_users, &index, &nul))
+	if (aff_keys_side_text(view->h->key_type, true) &&
+		!text_keys_valid(view->user_text_off, view->user_text, view->h->n_users, &index, &nul))
 		report_bad_text_key("user", index, nul, built);
-	if (!text_keys_valid(view->item_text_off, view->item_text, view->h->n_items, &index, &nul))
+	if (aff_keys_side_text(view->h->key_type, false) &&
+		!text_keys_valid(view->item_text_off, view->item_text, view->h->n_items, &index, &nul))
 		report_bad_text_key("item", index, nul, built);
 }
 

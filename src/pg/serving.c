@@ -173,7 +173,7 @@ affinity_top_items(PG_FUNCTION_ARGS)
 	e = model_get(fcinfo, 0);
 	v = &e->view;
 	meth = model_method(v);
-	check_output_keys(fcinfo, v, 0);
+	check_output_keys(fcinfo, v, 0, false);
 	k = get_k(fcinfo, 2, v->h->n_items);
 	require_arg(fcinfo, 3, "exclude_seen");
 	require_arg(fcinfo, 6, "fallback_popular");
@@ -220,7 +220,7 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 			 int argno_w, int32 **idx_out, float **w_out)
 {
 	ArrayType  *b = PG_GETARG_ARRAYTYPE_P(argno_b);
-	bool		text_call = ARR_ELEMTYPE(b) == TEXTOID;
+	bool		text_call = require_array_keys(fcinfo, argno_b, v, false);
 	Datum	   *be;
 	bool	   *bn;
 	int			nb;
@@ -233,12 +233,6 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 	int			n = 0;
 	int			i;
 
-	if ((v->h->key_type == AFF_KEYS_TEXT) != text_call)
-	{
-		int			dummy;
-
-		(void) array_key_indices(fcinfo, argno_b, v, false, &dummy);	/* raises the mismatch */
-	}
 	if (text_call)
 		deconstruct_array(b, TEXTOID, -1, false, TYPALIGN_INT, &be, &bn, &nb);
 	else
@@ -272,14 +266,7 @@ basket_items(FunctionCallInfo fcinfo, const AffModelView *v, int argno_b,
 		}
 		if (bn[i] || wi == 0)
 			continue;
-		if (text_call)
-		{
-			text	   *t = DatumGetTextPP(be[i]);
-
-			j = text_key_index(v, false, VARDATA_ANY(t), VARSIZE_ANY_EXHDR(t));
-		}
-		else
-			j = aff_find_key(v->item_keys, v->h->n_items, DatumGetInt64(be[i]));
+		j = key_elem_index(v, false, be[i], text_call);
 		if (j < 0)
 			continue;
 		if (acc[j] == 0)
@@ -372,7 +359,7 @@ affinity_top_items_basket(PG_FUNCTION_ARGS)
 	e = model_get(fcinfo, 0);
 	v = &e->view;
 	meth = model_method(v);
-	check_output_keys(fcinfo, v, 0);
+	check_output_keys(fcinfo, v, 0, false);
 	k = get_k(fcinfo, 2, v->h->n_items);
 	require_arg(fcinfo, ba->exclude_seen, "exclude_seen");
 	if (ba->fallback >= 0)
@@ -432,7 +419,7 @@ affinity_items_like(PG_FUNCTION_ARGS)
 	e = model_get(fcinfo, 0);
 	v = &e->view;
 	meth = model_method(v);
-	check_output_keys(fcinfo, v, 0);
+	check_output_keys(fcinfo, v, 0, false);
 	if (meth->item_row == NULL)
 		ereport(ERROR,
 				(errcode(ERRCODE_FEATURE_NOT_SUPPORTED),
@@ -484,7 +471,7 @@ affinity_users_like(PG_FUNCTION_ARGS)
 				 errdetail("This model was fitted with method \"%s\".",
 						   aff_method_name(v->h->method)),
 				 errhint("Fit with method \"implicit_als\".")));
-	check_output_keys(fcinfo, v, 0);
+	check_output_keys(fcinfo, v, 0, true);
 	k = get_k(fcinfo, 2, v->h->n_users);
 	u = key_arg_index(fcinfo, 1, v, true);
 	if (u < 0 || k == 0)
@@ -558,7 +545,7 @@ affinity_reasons(PG_FUNCTION_ARGS)
 				 errmsg("reasons needs a personalised model"),
 				 errdetail("A popularity model ranks by buyer counts alone."),
 				 errhint("Fit with method \"implicit_als\", \"ease\" or \"item_knn\".")));
-	check_output_keys(fcinfo, v, 0);
+	check_output_keys(fcinfo, v, 0, false);
 	k = get_k(fcinfo, 3, v->h->nnz);
 	u = key_arg_index(fcinfo, 1, v, true);
 	i = key_arg_index(fcinfo, 2, v, false);

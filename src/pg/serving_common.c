@@ -2,6 +2,15 @@
  * serving_common.c
  *		Helpers shared by the serving functions: set-returning plumbing,
  *		argument checks, key lists to index lists, emitting a top-k.
+ *
+ * Keys are checked per side (users, items), never per model.  A key given
+ * or returned as bigint needs a side of bigint keys.  A key given or
+ * returned as text needs a model with at least one text side: on a mixed
+ * model (bigint users with text items, or the reverse) the text forms of
+ * the serving functions take a key of the bigint side as text, written as
+ * a canonical decimal integer (anything else is a key the model does not
+ * know), and return it as text.  A pure bigint model refuses text calls
+ * and a pure text model bigint calls, as they always did.
  */
 #include "serving_common.h"
 #include "text_keys.h"
@@ -10,7 +19,18 @@
 #include "funcapi.h"
 #include "utils/array.h"
 #include "utils/builtins.h"
+#include "utils/lsyscache.h"
 #include "utils/tuplestore.h"
+
+/*
+ * Whether the current serving call returns its keys as text: set by
+ * check_output_keys from the result column, cleared by materialize().
+ * Every function that emits keys runs materialize() and then
+ * check_output_keys() before its first row, and a call runs to its end
+ * before the next one starts (materialize mode), so the flag always
+ * belongs to the call that reads it (key_datum).
+ */
+static bool keys_out_text = false;
 
 Jsonb *
 jsonb_from_cstring(const char *s)
@@ -30,6 +50,7 @@ materialize(FunctionCallInfo fcinfo)
 	ReturnSetInfo *rsinfo = (ReturnSetInfo *) fcinfo->resultinfo;
 	bits32		flags = 0;
 
+	keys_out_text = false;
 	if (rsinfo != NULL && IsA(rsinfo, ReturnSetInfo) && rsinfo->expectedDesc != NULL)
 		flags = MAT_SRF_USE_EXPECTED_DESC;
 #if PG_VERSION_NUM >= 150001
@@ -95,14 +116,97 @@ cmp_int32(const void *a, const void *b)
 	return x < y ? -1 : (x > y);
 }
 
-/* The model's key type must be the one the call uses. */
-static void
-require_key_type(const AffModelView *v, bool text_call)
+/* Whether t is a key type of the serving functions' arguments. */
+static bool
+is_key_type(Oid t)
 {
-	bool		text_model = v->h->key_type == AFF_KEYS_TEXT;
+	return t == INT8OID || t == TEXTOID || t == INT8ARRAYOID || t == TEXTARRAYOID;
+}
 
-	if (text_model == text_call)
+/*
+ * Argument i of the current call as it appears in the call's text form:
+ * keys as text (17850::text, '{1,2}'::text[], NULL::text[]), other values
+ * as literals.
+ */
+static void
+append_text_form_arg(StringInfo s, FunctionCallInfo fcinfo, int i, Oid t)
+{
+	Oid			out;
+	bool		varlena;
+	char	   *v;
+
+	if (PG_ARGISNULL(i))
+	{
+		appendStringInfoString(s, is_key_type(t) ?
+							   (t == INT8OID || t == TEXTOID ? "NULL::text" : "NULL::text[]")
+							   : "NULL");
 		return;
+	}
+	if (t == INT8OID)
+	{
+		appendStringInfo(s, INT64_FORMAT "::text", PG_GETARG_INT64(i));
+		return;
+	}
+	if (t == BOOLOID)
+	{
+		appendStringInfoString(s, PG_GETARG_BOOL(i) ? "true" : "false");
+		return;
+	}
+	getTypeOutputInfo(t, &out, &varlena);
+	v = OidOutputFunctionCall(out, PG_GETARG_DATUM(i));
+	if (t == TEXTOID)
+		appendStringInfoString(s, quote_literal_cstr(v));
+	else if (t == INT8ARRAYOID || t == TEXTARRAYOID)
+		appendStringInfo(s, "%s::text[]", quote_literal_cstr(v));
+	else if (t == INT4OID)
+		appendStringInfoString(s, v);
+	else
+		appendStringInfo(s, "%s::%s", quote_literal_cstr(v), format_type_be(t));
+}
+
+/*
+ * The current call written in its text form, for a hint: the function's
+ * name, then its arguments up to the last key argument that is not NULL
+ * (or the first key argument, when every one is NULL), keys cast to text:
+ * top_items(m, 17850, 5) becomes "affinity.top_items(model, 17850::text)".
+ */
+static char *
+text_form_call(FunctionCallInfo fcinfo)
+{
+	StringInfoData s;
+	int			last = 0;
+	int			first_key = 0;
+	int			i;
+	char	   *name = get_func_name(fcinfo->flinfo->fn_oid);
+
+	for (i = 1; i < fcinfo->nargs; i++)
+	{
+		Oid			t = get_fn_expr_argtype(fcinfo->flinfo, i);
+
+		if (!is_key_type(t))
+			continue;
+		if (first_key == 0)
+			first_key = i;
+		if (!PG_ARGISNULL(i))
+			last = i;
+	}
+	if (last == 0)
+		last = first_key;
+	initStringInfo(&s);
+	appendStringInfo(&s, "affinity.%s(model", name ? name : "?");
+	for (i = 1; i <= last; i++)
+	{
+		appendStringInfoString(&s, ", ");
+		append_text_form_arg(&s, fcinfo, i, get_fn_expr_argtype(fcinfo->flinfo, i));
+	}
+	appendStringInfoChar(&s, ')');
+	return s.data;
+}
+
+/* A model with one key type on both sides refuses a call of the other. */
+static void
+refuse_other_type(bool text_model, bool text_call)
+{
 	ereport(ERROR,
 			(errcode(ERRCODE_DATATYPE_MISMATCH),
 			 errmsg("this model has %s keys, but the call uses %s keys",
@@ -115,6 +219,45 @@ require_key_type(const AffModelView *v, bool text_call)
 }
 
 /*
+ * A key of side users that the call passes (returning false) or returns
+ * (returning true) as bigint or as text (text_call) must suit the model:
+ * bigint only on a bigint side, text on any model with a text side.
+ */
+static void
+require_side_type(FunctionCallInfo fcinfo, const AffModelView *v, bool users,
+				  bool text_call, bool returning)
+{
+	int			kt = v->h->key_type;
+	bool		side_text = aff_keys_side_text(kt, users);
+
+	if (text_call ? kt != AFF_KEYS_BIGINT : !side_text)
+		return;
+	if (kt == AFF_KEYS_BIGINT || kt == AFF_KEYS_TEXT)
+		refuse_other_type(kt == AFF_KEYS_TEXT, text_call);
+	ereport(ERROR,
+			(errcode(ERRCODE_DATATYPE_MISMATCH),
+			 errmsg("this model has %s user ids and %s item ids, but the call %s bigint %s ids",
+					aff_keys_side_text(kt, true) ? "text" : "bigint",
+					aff_keys_side_text(kt, false) ? "text" : "bigint",
+					returning ? "returns" : "passes", users ? "user" : "item"),
+			 errdetail("The model's key types are %s (user, item).", aff_keys_name(kt)),
+			 errhint("A model with a text side serves every call in its text form, with its bigint ids written as text: %s.",
+					 text_form_call(fcinfo))));
+}
+
+/*
+ * Index of a key of side users given as text, on either kind of side: a
+ * text side looks the text up; a bigint side (of a mixed model) takes a
+ * canonical decimal integer, anything else being a key it does not know.
+ * -1 when the model does not know the key.
+ */
+static int64
+text_arg_index(const AffModelView *v, bool users, text *k)
+{
+	return text_key_lookup(v, users, VARDATA_ANY(k), VARSIZE_ANY_EXHDR(k));
+}
+
+/*
  * Index of the key passed as argument argno (bigint or text, as the SQL
  * signature says), or -1 when the model does not know it.
  */
@@ -123,26 +266,30 @@ key_arg_index(FunctionCallInfo fcinfo, int argno, const AffModelView *v, bool us
 {
 	Oid			t = get_fn_expr_argtype(fcinfo->flinfo, argno);
 
+	require_side_type(fcinfo, v, users, t == TEXTOID, false);
 	if (t == TEXTOID)
-	{
-		text	   *k = PG_GETARG_TEXT_PP(argno);
-
-		require_key_type(v, true);
-		return text_key_index(v, users, VARDATA_ANY(k), VARSIZE_ANY_EXHDR(k));
-	}
-	require_key_type(v, false);
+		return text_arg_index(v, users, PG_GETARG_TEXT_PP(argno));
 	return aff_find_key(users ? v->user_keys : v->item_keys,
 						users ? v->h->n_users : v->h->n_items, PG_GETARG_INT64(argno));
 }
 
-/* The key of index i as the call returns it: bigint or text. */
+/*
+ * The key of index i as the call returns it: text for a text side, and
+ * for a bigint side when the call returns text keys (check_output_keys);
+ * bigint otherwise.
+ */
 Datum
 key_datum(const AffModelView *v, bool users, int64 i)
 {
+	int64		key;
+
 	AFF_ASSERT(i >= 0 && i < (users ? v->h->n_users : v->h->n_items));
-	if (v->h->key_type == AFF_KEYS_TEXT)
+	if (aff_keys_side_text(v->h->key_type, users))
 		return text_key_datum(v, users, i);
-	return Int64GetDatum(users ? v->user_keys[i] : v->item_keys[i]);
+	key = users ? v->user_keys[i] : v->item_keys[i];
+	if (keys_out_text)
+		return CStringGetTextDatum(psprintf(INT64_FORMAT, key));
+	return Int64GetDatum(key);
 }
 
 /* The key of index i as text, for messages. */
@@ -150,7 +297,7 @@ char *
 key_cstring(const AffModelView *v, bool users, int64 i)
 {
 	AFF_ASSERT(i >= 0 && i < (users ? v->h->n_users : v->h->n_items));
-	if (v->h->key_type == AFF_KEYS_TEXT)
+	if (aff_keys_side_text(v->h->key_type, users))
 		return TextDatumGetCString(text_key_datum(v, users, i));
 	return psprintf(INT64_FORMAT, users ? v->user_keys[i] : v->item_keys[i]);
 }
@@ -173,30 +320,44 @@ check_finite_scores(const AffModelView *v, bool users, int64 bad, const char *re
 			 errhint("The model's vectors or the request's weights are too large for float arithmetic; scale the weights down or refit with a larger regularization.")));
 }
 
-/* Column attno of the result must hold keys of the model's type. */
+/*
+ * Column attno of the result holds keys of side users: its type (bigint or
+ * text) must suit the model (require_side_type), and a text column makes
+ * the call return every key as text (key_datum).
+ */
 void
-check_output_keys(FunctionCallInfo fcinfo, const AffModelView *v, int attno)
+check_output_keys(FunctionCallInfo fcinfo, const AffModelView *v, int attno, bool users)
 {
 	ReturnSetInfo *rsinfo = (ReturnSetInfo *) fcinfo->resultinfo;
 	Oid			t = TupleDescAttr(rsinfo->setDesc, attno)->atttypid;
 
-	require_key_type(v, t == TEXTOID);
+	require_side_type(fcinfo, v, users, t == TEXTOID, true);
+	keys_out_text = t == TEXTOID;
 }
 
 /*
- * Index of one element of a key list (text when text_call, else bigint) of
- * the model's users or items, or -1 when the model does not know it.  The
- * list's type has been checked against the model's keys.
+ * The elements of the bigint[] or text[] argument argno must suit side
+ * users of the model (require_side_type); whether they are text.
+ */
+bool
+require_array_keys(FunctionCallInfo fcinfo, int argno, const AffModelView *v, bool users)
+{
+	bool		text_call = ARR_ELEMTYPE(PG_GETARG_ARRAYTYPE_P(argno)) == TEXTOID;
+
+	require_side_type(fcinfo, v, users, text_call, false);
+	return text_call;
+}
+
+/*
+ * Index of one element d of a key array (text when text_call) on side
+ * users, or -1 when the model does not know it; the array's type was
+ * checked with require_array_keys.
  */
 int64
-elem_key_index(const AffModelView *v, bool users, bool text_call, Datum d)
+key_elem_index(const AffModelView *v, bool users, Datum d, bool text_call)
 {
 	if (text_call)
-	{
-		text	   *k = DatumGetTextPP(d);
-
-		return text_key_index(v, users, VARDATA_ANY(k), VARSIZE_ANY_EXHDR(k));
-	}
+		return text_arg_index(v, users, DatumGetTextPP(d));
 	return aff_find_key(users ? v->user_keys : v->item_keys,
 						users ? v->h->n_users : v->h->n_items, DatumGetInt64(d));
 }
@@ -210,7 +371,7 @@ array_key_indices(FunctionCallInfo fcinfo, int argno, const AffModelView *v, boo
 				  int *n)
 {
 	ArrayType  *arr = PG_GETARG_ARRAYTYPE_P(argno);
-	bool		text_call = ARR_ELEMTYPE(arr) == TEXTOID;
+	bool		text_call = require_array_keys(fcinfo, argno, v, users);
 	Datum	   *elems;
 	bool	   *nulls;
 	int			ne;
@@ -218,7 +379,6 @@ array_key_indices(FunctionCallInfo fcinfo, int argno, const AffModelView *v, boo
 	int			i;
 	int			out = 0;
 
-	require_key_type(v, text_call);
 	if (text_call)
 		deconstruct_array(arr, TEXTOID, -1, false, TYPALIGN_INT, &elems, &nulls, &ne);
 	else
@@ -230,7 +390,7 @@ array_key_indices(FunctionCallInfo fcinfo, int argno, const AffModelView *v, boo
 
 		if (nulls[i])
 			continue;
-		j = elem_key_index(v, users, text_call, elems[i]);
+		j = key_elem_index(v, users, elems[i], text_call);
 		if (j >= 0)
 			idx[out++] = (int32) j;
 	}

@@ -21,7 +21,6 @@ extern void put_row(FunctionCallInfo fcinfo, Datum *values);
 extern void require_arg(FunctionCallInfo fcinfo, int argno, const char *name);
 extern int64 get_k(FunctionCallInfo fcinfo, int argno, int64 limit);
 extern void require_factors(const AffModelView *v, const char *fn);
-extern int64 elem_key_index(const AffModelView *v, bool users, bool text_call, Datum d);
 extern int32 *array_key_indices(FunctionCallInfo fcinfo, int argno,
 								const AffModelView *v, bool users, int *n);
 extern void emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const AffModelView *v,
@@ -32,7 +31,11 @@ extern Datum key_datum(const AffModelView *v, bool users, int64 i);
 extern char *key_cstring(const AffModelView *v, bool users, int64 i);
 extern void check_finite_scores(const AffModelView *v, bool users, int64 bad,
 								const char *request);
-extern void check_output_keys(FunctionCallInfo fcinfo, const AffModelView *v, int attno);
+extern void check_output_keys(FunctionCallInfo fcinfo, const AffModelView *v, int attno,
+							  bool users);
+extern bool require_array_keys(FunctionCallInfo fcinfo, int argno, const AffModelView *v,
+							   bool users);
+extern int64 key_elem_index(const AffModelView *v, bool users, Datum d, bool text_call);
 extern ArrayType *vector_array(const float *x, int f);
 extern void user_scores(const AffModelView *v, int64 u, float *scores);
 

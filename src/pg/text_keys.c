@@ -398,6 +398,52 @@ text_key_index(const AffModelView *v, bool users, const char *s, int len)
 	return i;
 }
 
+/*
+ * Whether s[0..len) is the canonical decimal form of an int64 (what int8out
+ * writes: an optional minus sign, no leading zero, no "-0", no sign "+" or
+ * blank), and that integer in *out.
+ */
+bool
+text_key_decimal(const char *s, int len, int64 *out)
+{
+	bool		neg = len > 0 && s[0] == '-';
+	int			i = neg ? 1 : 0;
+	uint64		acc = 0;
+	uint64		limit = neg ? (uint64) PG_INT64_MAX + 1 : (uint64) PG_INT64_MAX;
+
+	if (len - i < 1 || len - i > 19 || (s[i] == '0' && (len - i > 1 || neg)))
+		return false;
+	for (; i < len; i++)
+	{
+		if (s[i] < '0' || s[i] > '9')
+			return false;
+		if (acc > (limit - (uint64) (s[i] - '0')) / 10)
+			return false;
+		acc = acc * 10 + (uint64) (s[i] - '0');
+	}
+	*out = neg ? (int64) (0 - acc) : (int64) acc;
+	return true;
+}
+
+/*
+ * Index of a key of side users given as text, on either kind of side: the
+ * text itself on a text side; on a bigint side (of a mixed model), the
+ * integer a canonical decimal text writes (text_key_decimal).  -1 when the
+ * model does not know the key.
+ */
+int64
+text_key_lookup(const AffModelView *v, bool users, const char *s, int len)
+{
+	int64		key;
+
+	if (aff_keys_side_text(v->h->key_type, users))
+		return text_key_index(v, users, s, len);
+	if (!text_key_decimal(s, len, &key))
+		return -1;
+	return aff_find_key(users ? v->user_keys : v->item_keys,
+						users ? v->h->n_users : v->h->n_items, key);
+}
+
 /* The text key of index i as a text datum. */
 Datum
 text_key_datum(const AffModelView *v, bool users, int64 index)

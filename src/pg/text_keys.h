@@ -72,5 +72,7 @@ extern void text_dict_layout(TextDict *d, const int64 *keys, int64 n,
 
 extern int64 text_key_index(const AffModelView *v, bool users, const char *s, int len);
 extern Datum text_key_datum(const AffModelView *v, bool users, int64 index);
+extern bool text_key_decimal(const char *s, int len, int64 *out);
+extern int64 text_key_lookup(const AffModelView *v, bool users, const char *s, int len);
 
 #endif
