@@ -7,6 +7,7 @@ OBJS = \
 	src/core/interactions.o \
 	src/core/als.o \
 	src/core/topk.o \
+	src/core/rules.o \
 	src/core/model_format.o \
 	src/core/digest.o \
 	src/core/blas_pool.o \
@@ -27,6 +28,7 @@ OBJS = \
 	src/pg/model_cache.o \
 	src/pg/fit_agg.o \
 	src/pg/serving_common.o \
+	src/pg/rules.o \
 	src/pg/serving.o \
 	src/pg/batch.o \
 	src/pg/inspect.o \

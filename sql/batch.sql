@@ -130,6 +130,24 @@ FROM bat_wide, bat_all_f a FULL JOIN bat_each_f e USING (user_id, rank)
 WHERE abs(a.score - e.score) > 1e-5 IS NOT FALSE OR a.source IS DISTINCT FROM e.source
    OR (a.item_id <> e.item_id
        AND abs(affinity.score(model, a.user_id, a.item_id) - e.score) > 1e-5);
+-- rules in the batch: the same rows as top_items with the same rules, user
+-- by user (2 threads)
+CREATE TABLE bat_rules AS
+SELECT jsonb_build_object('max_per_group', 2, 'diversity', 0.4,
+                          'groups', (SELECT jsonb_object_agg(i::text, 'g' || (i % 7)) FROM generate_series(1, 200) i)) AS rules;
+SET affinity.threads = 2;
+CREATE TABLE bat_all_r AS
+SELECT t.* FROM bat_wide, bat_rules r, affinity.top_items_for_all(model, 5, rules => r.rules) t;
+RESET affinity.threads;
+CREATE TABLE bat_each_r AS
+SELECT u AS user_id, t.* FROM bat_wide, bat_rules r, generate_series(1, 1500) u,
+       affinity.top_items(model, u, 5, rules => r.rules) t;
+SELECT count(*) AS rows, count(DISTINCT user_id) AS users,
+       (SELECT max(n) FROM (SELECT count(*) AS n FROM bat_all_r GROUP BY user_id, item_id % 7) g) AS most_per_group
+FROM bat_all_r;
+SELECT count(*) AS mismatches
+FROM bat_all_r a FULL JOIN bat_each_r e USING (user_id, rank)
+WHERE a.item_id IS DISTINCT FROM e.item_id OR abs(a.score - e.score) > 1e-5 IS NOT FALSE;
 -- a list of users, exclude_seen => false, k above the catalogue; an unknown
 -- user (999) gets the popular items, as top_items gives it, unless
 -- fallback_popular is false

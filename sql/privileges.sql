@@ -19,7 +19,7 @@ GRANT SELECT ON priv_buys TO regress_affinity_reader;
 -- extension's schema, functions or type beyond what every role has.
 SET ROLE regress_affinity_reader;
 SELECT current_user, has_schema_privilege('affinity', 'USAGE') AS schema_usage;
-SELECT has_function_privilege('affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean)',
+SELECT has_function_privilege('affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean, jsonb)',
                               'EXECUTE') AS can_serve,
        has_type_privilege('affinity.model', 'USAGE') AS can_use_type;
 

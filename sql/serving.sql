@@ -117,6 +117,40 @@ SELECT affinity.score(model, 1, 3) AS buyers_of_3 FROM srv_pop;
 SELECT * FROM srv_pop, affinity.items_like(model, 1, 5);
 SELECT affinity.user_vector(model, 1) FROM srv_pop;
 
+-- rules on top of scores: at most N per group (groups: item key -> name),
+-- and a diversity re-ranking (MMR; its arithmetic is checked against a
+-- numpy version of the published rule in tests/check_rules_mmr.py)
+CREATE TABLE srv_groups AS
+SELECT jsonb_object_agg(i::text, CASE WHEN i % 2 = 0 THEN 'even' ELSE 'odd' END) AS groups
+FROM generate_series(1, 24) i;
+SELECT count(*) AS n, count(*) FILTER (WHERE item_id % 2 = 0) AS even, count(*) FILTER (WHERE item_id % 2 = 1) AS odd
+FROM srv, srv_groups g,
+     affinity.top_items(model, 1, 6, rules => jsonb_build_object('max_per_group', 2, 'groups', g.groups));
+-- the capped list is the plain list with the items of full groups passed over
+SELECT (SELECT array_agg(item_id ORDER BY rank) FROM srv, srv_groups g,
+          affinity.top_items(model, 1, 4, rules => jsonb_build_object('max_per_group', 2, 'groups', g.groups)))
+     = (SELECT array_agg(item_id ORDER BY rank) FROM (
+          SELECT item_id, rank, row_number() OVER (PARTITION BY item_id % 2 ORDER BY rank) AS nth
+          FROM srv, affinity.top_items(model, 1, 24) t) p WHERE nth <= 2 AND rank <= 100
+        ) AS same_as_sql_cap;
+-- with diversity the first item is still the best-scored one; the rows keep
+-- their own scores and ranks run 1..k
+SELECT (array_agg(item_id ORDER BY rank))[1] = (SELECT item_id FROM srv, affinity.top_items(model, 1, 1)) AS first_kept,
+       array_agg(rank ORDER BY rank) AS ranks,
+       bool_and(abs(score - affinity.score(model, 1, item_id)) < 1e-6) AS own_scores
+FROM srv, affinity.top_items(model, 1, 5, rules => '{"diversity": 0.7}');
+-- a basket too
+SELECT count(*) FILTER (WHERE item_id % 2 = 0) <= 1 AND count(*) FILTER (WHERE item_id % 2 = 1) <= 1 AS capped
+FROM srv, srv_groups g,
+     affinity.top_items(model, ARRAY[1, 2]::bigint[], 5, rules => jsonb_build_object('max_per_group', 1, 'groups', g.groups));
+-- bad rules
+SELECT * FROM srv, affinity.top_items(model, 1, 5, rules => '{"per_group": 2}');
+SELECT * FROM srv, affinity.top_items(model, 1, 5, rules => '{"max_per_group": 2}');
+SELECT * FROM srv, affinity.top_items(model, 1, 5, rules => '{"diversity": 1.5}');
+SELECT * FROM srv, affinity.top_items(model, 1, 5, rules => '[1, 2]');
+SELECT * FROM srv, affinity.top_items(model, 1, 5, rules => '{"max_per_group": 1, "groups": {"1": 7}}');
+SELECT * FROM srv_pop, affinity.top_items(model, 1, 5, rules => '{"diversity": 0.5}');
+
 -- runtime reports the BLAS kernel
 SELECT r ? 'blas_core' AS has_core, r->>'blas' AS blas, (r->>'online_cpus')::int >= 1 AS cpus,
        r->>'version' AS version

@@ -119,9 +119,9 @@ GRANT EXECUTE ON FUNCTION affinity.top_items(affinity.model, bigint, integer, bo
 -- and on to 1.3
 ALTER EXTENSION affinity UPDATE TO '1.3';
 SELECT extversion FROM pg_extension WHERE extname = 'affinity';
-SELECT has_function_privilege('public', 'affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean)', 'EXECUTE') AS public_may,
-       has_function_privilege('regress_upg_reader', 'affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean)', 'EXECUTE') AS reader_may,
-       has_function_privilege('public', 'affinity.top_items(affinity.model, text, integer, boolean, text[], text[], boolean)', 'EXECUTE') AS public_may_text_form;
+SELECT has_function_privilege('public', 'affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean, jsonb)', 'EXECUTE') AS public_may,
+       has_function_privilege('regress_upg_reader', 'affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean, jsonb)', 'EXECUTE') AS reader_may,
+       has_function_privilege('public', 'affinity.top_items(affinity.model, text, integer, boolean, text[], text[], boolean, jsonb)', 'EXECUTE') AS public_may_text_form;
 -- and a dump keeps them: no grant is recorded as the extension's own
 -- (pg_dump leaves initial privileges out), as in a fresh install
 SELECT count(*) AS initial_privileges_recorded FROM pg_init_privs
@@ -138,5 +138,5 @@ FROM upg_12 WHERE call = 'batch';
 SELECT count(*) AS differences FROM (
   SELECT u AS user_id, t.item_id, t.score, t.rank FROM upg_model, generate_series(1, 100) u, affinity.top_items(model, u, 5) t
   EXCEPT SELECT * FROM upg_before) d;
-REVOKE ALL ON FUNCTION affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean) FROM regress_upg_reader;
+REVOKE ALL ON FUNCTION affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean, jsonb) FROM regress_upg_reader;
 DROP ROLE regress_upg_reader;

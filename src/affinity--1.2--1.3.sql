@@ -182,7 +182,8 @@ COMMENT ON COLUMN affinity.models.key_types IS 'the key types of user_id and ite
 -- model).  The batch gains exclude, candidates and fallback_popular, as
 -- top_items has, and serves unknown users as top_items does; the basket form
 -- takes its arguments in the user form's order (model, key, k, exclude_seen,
--- exclude, candidates, fallback_popular), with weights last.  A result type
+-- exclude, candidates, fallback_popular), with weights last.  All of them
+-- take rules last: at most N items per group and a diversity re-ranking.  A result type
 -- cannot change in place, so each is dropped and made again; its grants
 -- are carried over (a database that revoked EXECUTE from PUBLIC keeps it
 -- revoked).  A view of the database's own that uses one of these functions
@@ -228,65 +229,68 @@ SELECT affinity.replace_function_1_3(
 	'affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean)',
 	$def$CREATE FUNCTION affinity.top_items(model affinity.model, user_id bigint, k integer DEFAULT 10,
 		exclude_seen boolean DEFAULT true, exclude bigint[] DEFAULT NULL,
-		candidates bigint[] DEFAULT NULL, fallback_popular boolean DEFAULT true)
+		candidates bigint[] DEFAULT NULL, fallback_popular boolean DEFAULT true,
+		rules jsonb DEFAULT NULL)
 	RETURNS TABLE (item_id bigint, score real, rank integer, source text)
 	AS 'MODULE_PATHNAME', 'affinity_top_items' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 10$def$,
-	'affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean)',
+	'affinity.top_items(affinity.model, bigint, integer, boolean, bigint[], bigint[], boolean, jsonb)',
 	'the k best items for a user; source says whether a row is personal or a popular fallback');
 SELECT affinity.replace_function_1_3(
 	'affinity.top_items(affinity.model, text, integer, boolean, text[], text[], boolean)',
 	$def$CREATE FUNCTION affinity.top_items(model affinity.model, user_id text, k integer DEFAULT 10,
 		exclude_seen boolean DEFAULT true, exclude text[] DEFAULT NULL,
-		candidates text[] DEFAULT NULL, fallback_popular boolean DEFAULT true)
+		candidates text[] DEFAULT NULL, fallback_popular boolean DEFAULT true,
+		rules jsonb DEFAULT NULL)
 	RETURNS TABLE (item_id text, score real, rank integer, source text)
 	AS 'MODULE_PATHNAME', 'affinity_top_items' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 10$def$,
-	'affinity.top_items(affinity.model, text, integer, boolean, text[], text[], boolean)',
+	'affinity.top_items(affinity.model, text, integer, boolean, text[], text[], boolean, jsonb)',
 	'the k best items for a user (text keys); source says whether a row is personal or a popular fallback');
 SELECT affinity.replace_function_1_3(
 	'affinity.top_items(affinity.model, bigint[], integer, real[], boolean, bigint[], bigint[])',
 	$def$CREATE FUNCTION affinity.top_items(model affinity.model, basket bigint[], k integer DEFAULT 10,
 		exclude_seen boolean DEFAULT true, exclude bigint[] DEFAULT NULL,
 		candidates bigint[] DEFAULT NULL, fallback_popular boolean DEFAULT true,
-		weights real[] DEFAULT NULL)
+		weights real[] DEFAULT NULL, rules jsonb DEFAULT NULL)
 	RETURNS TABLE (item_id bigint, score real, rank integer, source text)
 	AS 'MODULE_PATHNAME', 'affinity_top_items_basket' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 10$def$,
-	'affinity.top_items(affinity.model, bigint[], integer, boolean, bigint[], bigint[], boolean, real[])',
+	'affinity.top_items(affinity.model, bigint[], integer, boolean, bigint[], bigint[], boolean, real[], jsonb)',
 	'the k best items for a basket of items (a user the model has not seen)');
 SELECT affinity.replace_function_1_3(
 	'affinity.top_items(affinity.model, text[], integer, real[], boolean, text[], text[])',
 	$def$CREATE FUNCTION affinity.top_items(model affinity.model, basket text[], k integer DEFAULT 10,
 		exclude_seen boolean DEFAULT true, exclude text[] DEFAULT NULL,
 		candidates text[] DEFAULT NULL, fallback_popular boolean DEFAULT true,
-		weights real[] DEFAULT NULL)
+		weights real[] DEFAULT NULL, rules jsonb DEFAULT NULL)
 	RETURNS TABLE (item_id text, score real, rank integer, source text)
 	AS 'MODULE_PATHNAME', 'affinity_top_items_basket' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 10$def$,
-	'affinity.top_items(affinity.model, text[], integer, boolean, text[], text[], boolean, real[])',
+	'affinity.top_items(affinity.model, text[], integer, boolean, text[], text[], boolean, real[], jsonb)',
 	'the k best items for a basket of items with text keys (a user the model has not seen)');
 SELECT affinity.replace_function_1_3(
 	'affinity.top_items_for_all(affinity.model, integer, boolean, bigint[])',
 	$def$CREATE FUNCTION affinity.top_items_for_all(model affinity.model, k integer DEFAULT 10,
 		exclude_seen boolean DEFAULT true, users bigint[] DEFAULT NULL,
 		exclude bigint[] DEFAULT NULL, candidates bigint[] DEFAULT NULL,
-		fallback_popular boolean DEFAULT true)
+		fallback_popular boolean DEFAULT true, rules jsonb DEFAULT NULL)
 	RETURNS TABLE (user_id bigint, item_id bigint, score real, rank integer, source text)
 	AS 'MODULE_PATHNAME', 'affinity_top_items_for_all' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 100000 ROWS 100000$def$,
-	'affinity.top_items_for_all(affinity.model, integer, boolean, bigint[], bigint[], bigint[], boolean)',
+	'affinity.top_items_for_all(affinity.model, integer, boolean, bigint[], bigint[], bigint[], boolean, jsonb)',
 	'the k best items for every user of the model (or the given users), in blocks');
 -- the 1.1 positional text form, kept for the calls written for it
 SELECT affinity.replace_function_1_3(
 	'affinity.top_items_for_all(affinity.model, integer, boolean, text[])',
 	$def$CREATE FUNCTION affinity.top_items_for_all(model affinity.model, k integer,
 		exclude_seen boolean, users text[], exclude text[] DEFAULT NULL,
-		candidates text[] DEFAULT NULL, fallback_popular boolean DEFAULT true)
+		candidates text[] DEFAULT NULL, fallback_popular boolean DEFAULT true,
+		rules jsonb DEFAULT NULL)
 	RETURNS TABLE (user_id text, item_id text, score real, rank integer, source text)
 	AS 'MODULE_PATHNAME', 'affinity_top_items_for_all' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 100000 ROWS 100000$def$,
-	'affinity.top_items_for_all(affinity.model, integer, boolean, text[], text[], text[], boolean)',
+	'affinity.top_items_for_all(affinity.model, integer, boolean, text[], text[], text[], boolean, jsonb)',
 	'the k best items for every user of a text-key model (or the given users), in blocks');
 DROP FUNCTION affinity.replace_function_1_3(text, text, text, text);
 
@@ -296,11 +300,11 @@ DROP FUNCTION affinity.replace_function_1_3(text, text, text, text);
 CREATE FUNCTION affinity.top_items_for_all(model affinity.model, users text[],
 		k integer DEFAULT 10, exclude_seen boolean DEFAULT true,
 		exclude text[] DEFAULT NULL, candidates text[] DEFAULT NULL,
-		fallback_popular boolean DEFAULT true)
+		fallback_popular boolean DEFAULT true, rules jsonb DEFAULT NULL)
 	RETURNS TABLE (user_id text, item_id text, score real, rank integer, source text)
 	AS 'MODULE_PATHNAME', 'affinity_top_items_for_all_named' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 100000 ROWS 100000;
-COMMENT ON FUNCTION affinity.top_items_for_all(affinity.model, text[], integer, boolean, text[], text[], boolean) IS 'the k best items for the given users of a text-key model (NULL: every user), in blocks';
+COMMENT ON FUNCTION affinity.top_items_for_all(affinity.model, text[], integer, boolean, text[], text[], boolean, jsonb) IS 'the k best items for the given users of a text-key model (NULL: every user), in blocks';
 
 -- Evaluation --------------------------------------------------------------
 

@@ -32,7 +32,8 @@
 /*
  * Where the arguments are.  1.3 declares (model, k, exclude_seen, users,
  * exclude, candidates, fallback_popular) and, for text keys by name,
- * (model, users, k, exclude_seen, exclude, candidates, fallback_popular);
+ * (model, users, k, exclude_seen, exclude, candidates, fallback_popular),
+ * both with rules last;
  * a database not yet updated from 1.2 declares (model, k, exclude_seen,
  * users) and is served as it was: no filters, unknown users left out.
  * -1: the argument is absent.
@@ -45,11 +46,25 @@ typedef struct BatchArgs
 	int			exclude;
 	int			candidates;
 	int			fallback;
+	int			rules;
 } BatchArgs;
 
-static const BatchArgs batch_args_1_3 = {1, 2, 3, 4, 5, 6};
-static const BatchArgs batch_args_named = {2, 3, 1, 4, 5, 6};
-static const BatchArgs batch_args_1_2 = {1, 2, 3, -1, -1, -1};
+static const BatchArgs batch_args_1_3 = {1, 2, 3, 4, 5, 6, 7};
+static const BatchArgs batch_args_named = {2, 3, 1, 4, 5, 6, 7};
+static const BatchArgs batch_args_1_2 = {1, 2, 3, -1, -1, -1, -1};
+
+/*
+ * The rules of the call (rules.c), when it has any: the batch keeps each
+ * user's best pool items, and the backend re-ranks them chunk by chunk.
+ */
+typedef struct BatchRules
+{
+	AffRules	r;
+	AffServe	s;
+	RulesScratch *scratch;
+	AffScored  *out;			/* k */
+	int64		k;
+} BatchRules;
 
 /* Put one result row: (user, item, score, rank, source). */
 static void
@@ -66,23 +81,32 @@ put_batch_row(FunctionCallInfo fcinfo, Datum user, Datum item, float score, int6
 	put_row(fcinfo, values);
 }
 
-/* Emit the rows of users[0..n) from the batch's output. */
+/*
+ * Emit the rows of users[0..n) from the batch's output, through the rules
+ * when br is not NULL (the output then holds each user's pool).
+ */
 static void
 emit_chunk(FunctionCallInfo fcinfo, const AffModelView *v, const int32 *users,
-		   int64 n, const AffBatch *b, Datum source)
+		   int64 n, const AffBatch *b, Datum source, BatchRules *br)
 {
 	int64		r;
 	int64		j;
 
 	AFF_ASSERT(n >= 0 && n <= b->chunk);
 	for (r = 0; r < n; r++)
-		for (j = 0; j < b->kept[r]; j++)
-		{
-			const AffScored *e = &b->out[r * b->k + j];
+	{
+		const AffScored *list = &b->out[r * b->k];
+		int64		kept = b->kept[r];
 
-			put_batch_row(fcinfo, key_datum(v, true, users[r]), key_datum(v, false, e->index),
-						  e->score, j + 1, source);
+		if (br != NULL)
+		{
+			kept = rules_rank(&br->s, &br->r, br->scratch, list, kept, br->k, br->out);
+			list = br->out;
 		}
+		for (j = 0; j < kept; j++)
+			put_batch_row(fcinfo, key_datum(v, true, users[r]), key_datum(v, false, list[j].index),
+						  list[j].score, j + 1, source);
+	}
 }
 
 /* Order of bigint keys, and of text keys by length and bytes. */
@@ -145,13 +169,14 @@ unknown_users(FunctionCallInfo fcinfo, int argno, const AffModelView *v, int *n)
  */
 static void
 emit_unknown(FunctionCallInfo fcinfo, const AffModelView *v, const AffBatch *b,
-			 const Datum *unknown, int n)
+			 const Datum *unknown, int n, BatchRules *br)
 {
 	AffItemFilter flt;
 	AffTopK		t;
 	int64		kept;
 	int64		bad;
 	Datum		source = CStringGetTextDatum(affinity_source_popular);
+	const AffScored *list;
 	int			u;
 	int64		r;
 
@@ -165,12 +190,18 @@ emit_unknown(FunctionCallInfo fcinfo, const AffModelView *v, const AffBatch *b,
 	bad = aff_topk_scores(v->popularity, v->h->n_items, &flt, &t);
 	check_finite_scores(v, false, bad, "an unknown user");
 	kept = aff_topk_finish(&t);
+	list = t.heap;
+	if (br != NULL)
+	{
+		kept = rules_rank(&br->s, &br->r, br->scratch, t.heap, kept, br->k, br->out);
+		list = br->out;
+	}
 	for (u = 0; u < n; u++)
 	{
 		CHECK_FOR_INTERRUPTS();
 		for (r = 0; r < kept; r++)
-			put_batch_row(fcinfo, unknown[u], key_datum(v, false, t.heap[r].index),
-						  t.heap[r].score, r + 1, source);
+			put_batch_row(fcinfo, unknown[u], key_datum(v, false, list[r].index),
+						  list[r].score, r + 1, source);
 	}
 }
 
@@ -196,7 +227,11 @@ exclude_mask(FunctionCallInfo fcinfo, int argno, const AffModelView *v)
 static Datum
 top_items_for_all(FunctionCallInfo fcinfo, const BatchArgs *ba)
 {
+	CachedModel *cm;
 	AffModelView v;
+	BatchRules	brs;
+	BatchRules *br = NULL;
+	AffAllocator ra;
 	AffServe	s;
 	AffAllocator a = context_allocator(CurrentMemoryContext);
 	AffBatch	b;
@@ -214,7 +249,8 @@ top_items_for_all(FunctionCallInfo fcinfo, const BatchArgs *ba)
 	materialize(fcinfo);
 	if (PG_ARGISNULL(0))
 		return (Datum) 0;
-	model_fetch(fcinfo, 0, &v);
+	cm = model_get(fcinfo, 0);
+	v = cm->view;
 	check_output_keys(fcinfo, &v, 0, true);
 	check_output_keys(fcinfo, &v, 1, false);
 	k = get_k(fcinfo, ba->k, v.h->n_items);
@@ -226,6 +262,14 @@ top_items_for_all(FunctionCallInfo fcinfo, const BatchArgs *ba)
 								 : affinity_source_popular);
 	if (k == 0)
 		return (Datum) 0;
+	if (ba->rules >= 0 && rules_parse(fcinfo, ba->rules, &v, k, &brs.r))
+	{
+		br = &brs;
+		br->k = k;
+		serve_context(cm, &br->s, &ra, SERVE_ITEM_NORMS);
+		br->scratch = rules_scratch(&v, &br->r);
+		br->out = palloc(sizeof(AffScored) * k);
+	}
 	if (PG_ARGISNULL(ba->users))
 	{
 		n_users = (int) v.h->n_users;
@@ -242,6 +286,8 @@ top_items_for_all(FunctionCallInfo fcinfo, const BatchArgs *ba)
 
 	memset(&s, 0, sizeof(s));
 	s.v = &v;
+	if (br != NULL)
+		k = br->r.pool;			/* each user's pool, re-ranked chunk by chunk */
 	if (aff_batch_init(&b, &s, k, PG_GETARG_BOOL(ba->exclude_seen),
 					   resolve_threads(affinity_threads),
 					   Max(1, Min(CHUNK_USERS, CHUNK_ENTRIES / k)), &a, &err) != AFF_OK)
@@ -264,9 +310,9 @@ top_items_for_all(FunctionCallInfo fcinfo, const BatchArgs *ba)
 			check_finite_scores(&v, false, b.bad_item,
 								psprintf("user %s", key_cstring(&v, true, b.bad_user)));
 		engine_check(st, &err);
-		emit_chunk(fcinfo, &v, users + c, n, &b, source);
+		emit_chunk(fcinfo, &v, users + c, n, &b, source, br);
 	}
-	emit_unknown(fcinfo, &v, &b, unknown, n_unknown);
+	emit_unknown(fcinfo, &v, &b, unknown, n_unknown, br);
 	return (Datum) 0;
 }
 

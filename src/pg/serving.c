@@ -45,20 +45,37 @@ user_scores(const AffModelView *v, int64 u, float *scores)
  * of index who (a user when who_users) when who >= 0.
  */
 static void
-emit_best(FunctionCallInfo fcinfo, const AffModelView *v, const float *scores,
+emit_best(FunctionCallInfo fcinfo, CachedModel *e, const float *scores,
 		  const AffItemFilter *flt, int64 k, bool users, const char *request,
-		  int64 who, bool who_users, const char *source)
+		  int64 who, bool who_users, const char *source, const AffRules *rules)
 {
+	const AffModelView *v = &e->view;
+	bool		ruled = rules != NULL && aff_rules_active(rules);
+	int64		want = ruled ? rules->pool : k;
 	AffTopK		t;
 	int64		bad;
+	AffServe	s;
+	AffAllocator a;
+	AffScored  *out;
+	int64		n;
 
-	aff_topk_init(&t, palloc(sizeof(AffScored) * Max(k, 1)), k);
+	aff_topk_init(&t, palloc(sizeof(AffScored) * Max(want, 1)), want);
 	bad = aff_topk_scores(scores, users ? v->h->n_users : v->h->n_items, flt, &t);
 	if (bad >= 0)
 		check_finite_scores(v, users, bad,
 							who < 0 ? request :
 							psprintf("%s %s", request, key_cstring(v, who_users, who)));
-	emit_topk(fcinfo, &t, v, users, source);
+	if (!ruled)
+	{
+		emit_topk(fcinfo, &t, v, users, source);
+		return;
+	}
+	/* the best pool items, re-ranked by the rules (rules.c) */
+	n = aff_topk_finish(&t);
+	serve_context(e, &s, &a, SERVE_ITEM_NORMS);
+	out = palloc(sizeof(AffScored) * Max(k, 1));
+	n = rules_rank(&s, rules, rules_scratch(v, rules), t.heap, n, k, out);
+	emit_scored(fcinfo, out, n, v, users, source);
 }
 
 /*
@@ -166,6 +183,7 @@ affinity_top_items(PG_FUNCTION_ARGS)
 	int64		u;
 	uint8	   *skip;
 	float	   *scores;
+	AffRules	rules;
 
 	materialize(fcinfo);
 	if (PG_ARGISNULL(0) || PG_ARGISNULL(1))
@@ -177,6 +195,8 @@ affinity_top_items(PG_FUNCTION_ARGS)
 	k = get_k(fcinfo, 2, v->h->n_items);
 	require_arg(fcinfo, 3, "exclude_seen");
 	require_arg(fcinfo, 6, "fallback_popular");
+	/* 1.3 declares rules eighth; a 1.2 database has seven arguments */
+	(void) rules_parse(fcinfo, PG_NARGS() >= 8 ? 7 : -1, v, k, &rules);
 	u = key_arg_index(fcinfo, 1, v, true);
 	if (u < 0)
 		notice_cart_literal(fcinfo, 1);
@@ -205,8 +225,9 @@ affinity_top_items(PG_FUNCTION_ARGS)
 		meth->candidate_scores(&s, u, flt.cand, flt.n_cand, scores);
 	else
 		meth->user_scores(&s, u, scores);
-	emit_best(fcinfo, v, scores, &flt, k, false, u < 0 ? "an unknown user" : "user", u, true,
-			  u >= 0 && meth->personal ? affinity_source_personal : affinity_source_popular);
+	emit_best(fcinfo, e, scores, &flt, k, false, u < 0 ? "an unknown user" : "user", u, true,
+			  u >= 0 && meth->personal ? affinity_source_personal : affinity_source_popular,
+			  &rules);
 	return (Datum) 0;
 }
 
@@ -311,8 +332,8 @@ PG_FUNCTION_INFO_V1(affinity_top_items_basket);
 
 /*
  * Where the basket form's arguments are: 1.3 declares (model, basket, k,
- * exclude_seen, exclude, candidates, fallback_popular, weights), the user
- * form's order with weights last; a database not yet updated from 1.2
+ * exclude_seen, exclude, candidates, fallback_popular, weights, rules), the
+ * user form's order with weights and rules last; a database not yet updated from 1.2
  * declares (model, basket, k, weights, exclude_seen, exclude, candidates)
  * and is served as it was (a basket of unknown items falls back).
  */
@@ -323,10 +344,11 @@ typedef struct BasketArgs
 	int			exclude;
 	int			candidates;
 	int			fallback;		/* -1: always fall back */
+	int			rules;			/* -1: none */
 } BasketArgs;
 
-static const BasketArgs basket_args_1_3 = {7, 3, 4, 5, 6};
-static const BasketArgs basket_args_1_2 = {3, 4, 5, 6, -1};
+static const BasketArgs basket_args_1_3 = {7, 3, 4, 5, 6, 8};
+static const BasketArgs basket_args_1_2 = {3, 4, 5, 6, -1, -1};
 
 /*
  * top_items(model, basket, k, exclude_seen, exclude, candidates,
@@ -337,7 +359,7 @@ static const BasketArgs basket_args_1_2 = {3, 4, 5, 6, -1};
 Datum
 affinity_top_items_basket(PG_FUNCTION_ARGS)
 {
-	const BasketArgs *ba = PG_NARGS() == 8 ? &basket_args_1_3 : &basket_args_1_2;
+	const BasketArgs *ba = PG_NARGS() >= 9 ? &basket_args_1_3 : &basket_args_1_2;
 	CachedModel *e;
 	const AffModelView *v;
 	const AffMethod *meth;
@@ -352,6 +374,7 @@ affinity_top_items_basket(PG_FUNCTION_ARGS)
 	uint8	   *skip;
 	float	   *scores;
 	int			i;
+	AffRules	rules;
 
 	materialize(fcinfo);
 	if (PG_ARGISNULL(0) || PG_ARGISNULL(1))
@@ -366,6 +389,7 @@ affinity_top_items_basket(PG_FUNCTION_ARGS)
 		require_arg(fcinfo, ba->fallback, "fallback_popular");
 	if (k == 0)
 		return (Datum) 0;
+	(void) rules_parse(fcinfo, ba->rules, v, k, &rules);
 	n = basket_items(fcinfo, v, 1, ba->weights, &idx, &w);
 	if (n == 0 && ba->fallback >= 0 && !PG_GETARG_BOOL(ba->fallback))
 		return (Datum) 0;
@@ -387,8 +411,9 @@ affinity_top_items_basket(PG_FUNCTION_ARGS)
 		serve_context(e, &s, &a, SERVE_GRAM);
 		serve_check(meth->basket_scores(&s, idx, w, n, scores, &err), &err);
 	}
-	emit_best(fcinfo, v, scores, &flt, k, false, "the basket", -1, false,
-			  n > 0 && meth->personal ? affinity_source_basket : affinity_source_popular);
+	emit_best(fcinfo, e, scores, &flt, k, false, "the basket", -1, false,
+			  n > 0 && meth->personal ? affinity_source_basket : affinity_source_popular,
+			  &rules);
 	return (Datum) 0;
 }
 
@@ -439,7 +464,7 @@ affinity_items_like(PG_FUNCTION_ARGS)
 	skip = palloc(v->h->n_items);
 	meth->item_row(&s, it, sims, skip);
 	flt.skip = skip;
-	emit_best(fcinfo, v, sims, &flt, k, false, "the items like item", it, false, NULL);
+	emit_best(fcinfo, e, sims, &flt, k, false, "the items like item", it, false, NULL, NULL);
 	return (Datum) 0;
 }
 
@@ -483,7 +508,7 @@ affinity_users_like(PG_FUNCTION_ARGS)
 	skip[u] = 1;
 	memset(&flt, 0, sizeof(flt));
 	flt.skip = skip;
-	emit_best(fcinfo, v, sims, &flt, k, true, "the users like user", u, true, NULL);
+	emit_best(fcinfo, e, sims, &flt, k, true, "the users like user", u, true, NULL, NULL);
 	return (Datum) 0;
 }
 

@@ -411,19 +411,28 @@ void
 emit_topk(FunctionCallInfo fcinfo, AffTopK *t, const AffModelView *v, bool users,
 		  const char *source)
 {
-	ReturnSetInfo *rsinfo = (ReturnSetInfo *) fcinfo->resultinfo;
 	int64		n = aff_topk_finish(t);
-	int64		r;
-	bool		with_source = source != NULL && rsinfo->setDesc->natts >= 4;
-	Datum		src = with_source ? CStringGetTextDatum(source) : (Datum) 0;
 
 	AFF_ASSERT(n >= 0 && n <= t->k);
+	emit_scored(fcinfo, t->heap, n, v, users, source);
+}
+
+/* Emit list[0 .. n) in its order as (key, score, rank [, source]) rows. */
+void
+emit_scored(FunctionCallInfo fcinfo, const AffScored *list, int64 n, const AffModelView *v,
+			bool users, const char *source)
+{
+	ReturnSetInfo *rsinfo = (ReturnSetInfo *) fcinfo->resultinfo;
+	bool		with_source = source != NULL && rsinfo->setDesc->natts >= 4;
+	Datum		src = with_source ? CStringGetTextDatum(source) : (Datum) 0;
+	int64		r;
+
 	for (r = 0; r < n; r++)
 	{
 		Datum		values[4];
 
-		values[0] = key_datum(v, users, t->heap[r].index);
-		values[1] = Float4GetDatum(t->heap[r].score);
+		values[0] = key_datum(v, users, list[r].index);
+		values[1] = Float4GetDatum(list[r].score);
 		values[2] = Int32GetDatum((int32) (r + 1));
 		values[3] = src;
 		put_row(fcinfo, values);

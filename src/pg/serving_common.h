@@ -10,7 +10,25 @@
 #include "utils/array.h"
 
 #include "../core/interactions.h"
+#include "../core/rules.h"
 #include "../core/topk.h"
+
+/* rules.c: the rules argument of top_items and the batch */
+typedef struct RulesScratch
+{
+	float	   *work;			/* 2 * pool */
+	int32	   *counts;			/* n_groups */
+	float	   *row;			/* n_items, when diversity > 0 */
+	uint8	   *skip;
+} RulesScratch;
+
+extern bool rules_parse(FunctionCallInfo fcinfo, int argno, const AffModelView *v, int64 k,
+						AffRules *r);
+extern RulesScratch *rules_scratch(const AffModelView *v, const AffRules *r);
+extern int64 rules_rank(const AffServe *s, const AffRules *r, RulesScratch *sc,
+						const AffScored *pool, int64 n, int64 k, AffScored *out);
+extern void emit_scored(FunctionCallInfo fcinfo, const AffScored *list, int64 n,
+						const AffModelView *v, bool users, const char *source);
 
 extern const char *const affinity_source_personal;
 extern const char *const affinity_source_basket;
