@@ -9,8 +9,8 @@ refuse root), and is stopped and removed when the program exits, also when it
 fails, raises or is stopped by SIGTERM (scripts/test's timeout).
 
 Ports: the ten ports from $AFFINITY_TEST_EXTRA_PORT, by default ten above
-$AFFINITY_TEST_PORT (or PGPORT, or 54329); a port whose socket or TCP port is
-taken is passed over.  The binaries are those of $AFFINITY_PG_BIN, else the
+$AFFINITY_TEST_PORT (or PGPORT, or 54329); a port that answers on TCP is passed
+over (the clusters themselves listen on their private socket directories only).  The binaries are those of $AFFINITY_PG_BIN, else the
 first pg_ctl in PATH (scripts/test puts PostgreSQL 15's bin first), so the
 extension installed by scripts/test is the one the new clusters load.
 """
