@@ -17,3 +17,7 @@
 -- Serving -----------------------------------------------------------------
 
 -- Evaluation --------------------------------------------------------------
+-- No object changes here: ranking_metrics keeps its signatures.  The held-out
+-- statements read each model once when each model is scored in a subquery of
+-- its own over the held-out rows (README, "Held-out statements"); the hint of
+-- the second-model error and the final function (src/pg/metrics.c) changed.
