@@ -309,6 +309,10 @@ CREATE FUNCTION affinity.top_items_for_all(model affinity.model, users text[],
 COMMENT ON FUNCTION affinity.top_items_for_all(affinity.model, text[], integer, boolean, text[], text[], boolean, jsonb) IS 'the k best items for the given users of a text-key model (NULL: every user), in blocks';
 
 -- Evaluation --------------------------------------------------------------
+-- No object changes here: ranking_metrics keeps its signatures.  The held-out
+-- statements read each model once when each model is scored in a subquery of
+-- its own over the held-out rows (README, "Held-out statements"); the hint of
+-- the second-model error and the final function (src/pg/metrics.c) changed.
 
 -- Item profiles ----------------------------------------------------------
 

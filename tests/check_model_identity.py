@@ -17,7 +17,9 @@ bytes), and checked four ways in one backend, after A was served:
 * B with the digest cleared, as a value written before digests existed,
   is accepted, given its own digest, and served with its own vectors;
 * the same, sent through binary COPY (model_recv);
-* both stored in a table (TOAST pointers) are each served as themselves.
+* both stored in a table (TOAST pointers) are each served as themselves;
+* ranking_metrics in the README's held-out form (a subquery per model) scores
+  A and B each as itself, and refuses B keeping A's digest.
 
 On the code before the digest, the first two serve B with A's vectors.
 """
@@ -169,6 +171,37 @@ def run_case(c, cur, label, users, factors):
     ok = (max(abs(x - y) for x, y in zip(rows["a"], vec_a)) < 1e-6 and
           max(abs(x + y) for x, y in zip(rows["b"], vec_a)) < 1e-6)
     c.check(ok, "%s: stored A and B (binary COPY) are each served as themselves" % label)
+
+    # 5. ranking_metrics in the README's held-out form (a subquery per model
+    #    over the held-out rows, the model passed as a parameter): the held-out
+    #    items are A's top 3 for the customer, so A scores recall 1 and B, whose
+    #    vector is negated, less; each equals its stored copy's figures
+    cur.execute("SELECT item_id FROM affinity.top_items(%s::affinity.model, %s, 3)",
+                (b64(a), TARGET_USER))
+    top_a = [r[0] for r in cur.fetchall()]
+    cur.execute("DROP TABLE IF EXISTS held")
+    cur.execute("CREATE TABLE held AS SELECT %s::bigint AS customer_id, "
+                "unnest(%s::bigint[]) AS product_id", (TARGET_USER, top_a))
+    held_form = """SELECT m.label, (SELECT affinity.ranking_metrics(m.model, t.customer_id, t.product_id, 3)
+                                    FROM held t)
+                   FROM (VALUES ('a', %s::affinity.model), ('b', %s::affinity.model)) m(label, model)"""
+    cur.execute(held_form, (b64(a), b64(b_nodigest)))
+    sub = dict(cur.fetchall())
+    cur.execute("""SELECT k.label, affinity.ranking_metrics(k.model, t.customer_id, t.product_id, 3)
+                   FROM kept k, held t GROUP BY k.label""")
+    saved = dict(cur.fetchall())
+    ok = (len(top_a) == 3 and sub == saved and sub["a"]["recall"] == 1
+          and sub["b"]["recall"] < 1)
+    c.check(ok, "%s: ranking_metrics in the subquery form scores A and B (no digest) each as "
+                "itself, equal to their stored copies" % label,
+            "" if ok else "subquery form %s, stored %s" % (sub, saved))
+    try:
+        cur.execute(held_form, (b64(a), b64(b)))
+        c.check(False, "%s: the subquery form refuses B with A's digest" % label)
+    except psycopg2.Error as e:
+        c.check(e.pgcode == "22P03" and "digest" in e.diag.message_primary,
+                "%s: the subquery form refuses B with A's digest" % label,
+                "%s %s" % (e.pgcode, e.diag.message_primary))
     return n_users
 
 

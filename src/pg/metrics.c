@@ -244,7 +244,7 @@ check_same_model(MetricsState *st, struct varlena *raw)
 						   (unsigned long long) st->id.checksum,
 						   (unsigned long long) id.total_size,
 						   (unsigned long long) id.checksum),
-				 errhint("To evaluate several models in one query, GROUP BY the model (or its name): one result per model.")));
+				 errhint("To evaluate several models in one query, give each its own aggregate: a subquery per model over the held-out rows, or GROUP BY the model's name.")));
 	remember_pointer(st, raw);
 }
 
@@ -713,7 +713,20 @@ affinity_ranking_metrics_finalfn(PG_FUNCTION_ARGS)
 	st = (MetricsState *) PG_GETARG_POINTER(0);
 	if (st->model == NULL)
 		PG_RETURN_NULL();
-	m = (struct varlena *) PG_DETOAST_DATUM_COPY(PointerGetDatum(st->model));
+	/*
+	 * The state's own copy is read in place when it is a plain value (a
+	 * model fitted in the same query arrives so): it was allocated by
+	 * state_set_model or the deserialize function with palloc's alignment,
+	 * which the view needs, it lives as long as the state, and the view
+	 * only reads it (FINALFUNC_MODIFY = SHAREABLE holds).  Nothing is
+	 * trusted that was not before: the view below checks the same bytes a
+	 * copy would hold.  A TOAST pointer, compressed or short-header value
+	 * is detoasted into a fresh (aligned) copy, as before.
+	 */
+	if (VARATT_IS_EXTENDED(st->model))
+		m = (struct varlena *) PG_DETOAST_DATUM_COPY(PointerGetDatum(st->model));
+	else
+		m = st->model;
 	if (aff_model_view((const uint8 *) m, VARSIZE(m), &v, &err) != AFF_OK)
 		report_engine_error(&err);
 	if (model_method(&v)->catalogue)
