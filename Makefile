@@ -21,6 +21,7 @@ OBJS = \
 	src/core/method_ease.o \
 	src/core/method_knn.o \
 	src/core/method_profiles.o \
+	src/core/method_content.o \
 	src/core/serve.o \
 	src/pg/guc.o \
 	src/pg/options.o \
@@ -36,14 +37,15 @@ OBJS = \
 	src/pg/erase.o \
 	src/pg/text_keys.o \
 	src/pg/method_glue.o \
-	src/pg/profiles.o
+	src/pg/profiles.o \
+	src/pg/content.o
 
 EXTENSION = affinity
 EXTVERSION = 1.3
 DATA = src/affinity--1.0.sql src/affinity--1.0--1.1.sql src/affinity--1.1--1.2.sql src/affinity--1.2--1.3.sql
 PGFILEDESC = "affinity - recommendation models in SQL"
 
-REGRESS = type fit serving batch metrics methods registry text_keys mixed_keys corrupt privileges errors upgrade profiles
+REGRESS = type fit serving batch metrics methods registry text_keys mixed_keys corrupt privileges errors upgrade profiles content
 ISOLATION = refresh_race
 REGRESS_OPTS = --inputdir=. --outputdir=. --load-extension=affinity
 

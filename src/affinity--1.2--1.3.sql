@@ -7,12 +7,13 @@
 --   Mixed keys: bigint users with text items and text users with bigint
 --     items, in the fit, the serving functions and the registry.
 --   Serving: where each row came from, the batch's filters and fallback,
---     one order of the leading arguments.
+--     one order of the leading arguments, rules (group caps, diversity).
 --   Evaluation: held-out statements that do not copy a model per row.
 --   Item profiles: the item x feature matrix of a catalogue as a model
 --     value (feature rows or dense vectors), served by items_like.
 --   Beyond one server: the registry's writers refused on a hot standby
 --     with a hint to run them on the primary.
+--   Content-based filtering: fit with item profiles (method content).
 -- Each section stands alone; later changes of 1.3 go in sections of their
 -- own at the end.
 
@@ -440,3 +441,64 @@ BEGIN
 END
 $$;
 COMMENT ON FUNCTION affinity.registry_session() IS 'the calling session''s login role, session user and current user, as oids (for the registry''s owner checks); refuses on a hot standby, where the registry is read-only';
+
+-- Content-based filtering ---------------------------------------------------
+
+-- affinity.fit with item profiles as a fifth argument, for method content:
+-- each customer's preference vector over the profiles' features is the
+-- ridge regression of the customer's confidence-weighted purchases on the
+-- item profiles, and every item of the profiles' catalogue, bought or not,
+-- is scored.  The profiles come as a scalar subquery (evaluated once).  The
+-- transition functions are those of the four-argument forms, which read
+-- the options from the fifth argument and the profiles from the sixth; the
+-- aggregates have no combine function, so no parallel worker holds a
+-- state of its own (a parallel scan below still feeds the one state).
+CREATE FUNCTION affinity.fit_transfn(internal, bigint, bigint, real, jsonb, affinity.model)
+	RETURNS internal
+	AS 'MODULE_PATHNAME', 'affinity_fit_transfn' LANGUAGE C PARALLEL SAFE;
+CREATE FUNCTION affinity.fit_text_transfn(internal, text, text, real, jsonb, affinity.model)
+	RETURNS internal
+	AS 'MODULE_PATHNAME', 'affinity_fit_text_transfn' LANGUAGE C PARALLEL SAFE;
+CREATE FUNCTION affinity.fit_mixed_transfn(internal, bigint, text, real, jsonb, affinity.model)
+	RETURNS internal
+	AS 'MODULE_PATHNAME', 'affinity_fit_mixed_transfn' LANGUAGE C PARALLEL SAFE;
+CREATE FUNCTION affinity.fit_mixed_transfn(internal, text, bigint, real, jsonb, affinity.model)
+	RETURNS internal
+	AS 'MODULE_PATHNAME', 'affinity_fit_mixed_transfn' LANGUAGE C PARALLEL SAFE;
+
+CREATE AGGREGATE affinity.fit(user_id bigint, item_id bigint, weight real, options jsonb,
+							  profiles affinity.model) (
+	SFUNC = affinity.fit_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+CREATE AGGREGATE affinity.fit(user_id text, item_id text, weight real, options jsonb,
+							  profiles affinity.model) (
+	SFUNC = affinity.fit_text_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+CREATE AGGREGATE affinity.fit(user_id bigint, item_id text, weight real, options jsonb,
+							  profiles affinity.model) (
+	SFUNC = affinity.fit_mixed_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+CREATE AGGREGATE affinity.fit(user_id text, item_id bigint, weight real, options jsonb,
+							  profiles affinity.model) (
+	SFUNC = affinity.fit_mixed_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit(bigint, bigint, real, jsonb, affinity.model) IS 'fit a content model over (user, item, weight) rows and item profiles (method content); options as jsonb';
+COMMENT ON AGGREGATE affinity.fit(text, text, real, jsonb, affinity.model) IS 'fit a content model over (user, item, weight) rows with text keys and item profiles (method content); options as jsonb';
+COMMENT ON AGGREGATE affinity.fit(bigint, text, real, jsonb, affinity.model) IS 'fit a content model over (user, item, weight) rows with bigint user keys, text item keys and item profiles (method content); options as jsonb';
+COMMENT ON AGGREGATE affinity.fit(text, bigint, real, jsonb, affinity.model) IS 'fit a content model over (user, item, weight) rows with text user keys, bigint item keys and item profiles (method content); options as jsonb';

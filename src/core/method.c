@@ -23,6 +23,7 @@ const AffMethod *const aff_methods[] = {
 	&aff_method_ease,
 	&aff_method_item_knn,
 	&aff_method_item_profiles,
+	&aff_method_content,
 };
 const int	aff_n_methods = (int) (sizeof(aff_methods) / sizeof(aff_methods[0]));
 
@@ -63,10 +64,16 @@ aff_method_name(int method)
 double
 aff_default_regularization(int method)
 {
+	if (method == AFF_METHOD_CONTENT)
+		return 1.0;
 	return method == AFF_METHOD_EASE ? 500.0 : 30.0;
 }
 
-static const char *const method_choices[] = {"implicit_als", "popularity", "ease", "item_knn"};
+/* item_profiles (code 5) is built by its own aggregate, not chosen in a fit */
+static const char *const method_choices[] = {"implicit_als", "popularity", "ease", "item_knn",
+"content"};
+static const int method_codes[] = {AFF_METHOD_IMPLICIT_ALS, AFF_METHOD_POPULARITY,
+AFF_METHOD_EASE, AFF_METHOD_ITEM_KNN, AFF_METHOD_CONTENT};
 static const char *const solver_choices[] = {"cg", "cholesky"};
 static const char *const confidence_choices[] = {"linear", "log"};
 static const char *const normalization_choices[] = {"none", "l2", "tfidf"};
@@ -82,7 +89,7 @@ static const char *const normalization_choices[] = {"none", "l2", "tfidf"};
  */
 const AffOptionDef aff_option_defs[AFF_OPT_COUNT] = {
 	{AFF_OPT_METHOD, "method", NULL, AFF_OPTTYPE_CHOICE, 0, 0, false,
-	method_choices, 4, OPT(method), AFF_NO_FIELD},
+	method_choices, 5, OPT(method), AFF_NO_FIELD, method_codes},
 	{AFF_OPT_FACTORS, "factors", NULL, AFF_OPTTYPE_INT, 1, AFF_MAX_FACTORS, false,
 	NULL, 0, OPT(factors), HDR(factors)},
 	{AFF_OPT_ITERATIONS, "iterations", NULL, AFF_OPTTYPE_INT, 1, 10000, false,
@@ -291,6 +298,9 @@ aff_fit_run(const AffMatrix *m, const AffOptions *o, const AffFitContext *cx,
 	if (meth == NULL)
 		return aff_fail(err, AFF_ERR_OPTION, "unknown method code %d", o->method);
 	AFF_ASSERT(o->threads >= 1);
+	if (meth->fit == NULL)
+		return aff_fail(err, AFF_ERR_OPTION, "method \"%s\" is not fitted from purchases",
+						meth->name);
 	AFF_ASSERT(m->n_users >= 1 && m->n_items >= 1);
 	return meth->fit(m, o, cx, parts, err);
 }

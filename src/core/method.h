@@ -99,6 +99,7 @@ typedef struct AffOptionDef
 	int			n_choices;
 	size_t		field;			/* offsetof in AffOptions */
 	size_t		header_field;	/* offsetof in AffModelHeader, or AFF_NO_FIELD */
+	const int  *codes;			/* CHOICE: the code of each choice (NULL: index + 1) */
 } AffOptionDef;
 
 extern const AffOptionDef aff_option_defs[AFF_OPT_COUNT];
@@ -224,6 +225,7 @@ extern const AffMethod aff_method_popularity;
 extern const AffMethod aff_method_ease;
 extern const AffMethod aff_method_item_knn;
 extern const AffMethod aff_method_item_profiles;
+extern const AffMethod aff_method_content;
 
 /* Fit scaffolding shared by the method files (method.c). */
 extern void aff_fit_header(AffModelParts *parts, const AffOptions *o,

@@ -462,8 +462,8 @@ profile_info(const AffModelView *v)
  * feature of non-zero weight with it, nor it itself.  A row of zeros gets no
  * look-alike at all.
  */
-static void
-profiles_item_row(const AffServe *s, int64_t it, float *sims, uint8_t *skip)
+void
+aff_profiles_item_row(const AffServe *s, int64_t it, float *sims, uint8_t *skip)
 {
 	const AffModelView *v = s->v;
 	const int64_t *info = profile_info(v);
@@ -558,11 +558,27 @@ first_bad(const float *x, uint64_t n, AffPollFn poll, void *poll_arg, int *stop)
 
 /*
  * The content checks of a profiles value (after the format's own): the
- * header's unused fields, profile_info, then the sections its kind needs
- * (and none of the other kind's), their counts and content.
+ * header's unused fields, then the profile sections.
  */
 static AffStatus
 profiles_check(const AffModelView *v, AffPollFn poll, void *poll_arg, AffError *err)
+{
+	const AffModelHeader *h = v->h;
+
+	if (h->regularization != 0 || h->alpha != 0 || h->epsilon != 0 || h->seed != 0 ||
+		!isfinite(h->fit_seconds) || h->fit_seconds < 0)
+		return bad_value(err, "header options", 0, 0);
+	return aff_profiles_check_sections(v, poll, poll_arg, err);
+}
+
+/*
+ * profile_info, then the sections its kind needs (and none of the other
+ * kind's), their counts and content; shared with the content method,
+ * whose values carry the profiles they were fitted on.
+ */
+AffStatus
+aff_profiles_check_sections(const AffModelView *v, AffPollFn poll, void *poll_arg,
+							AffError *err)
 {
 	const AffModelHeader *h = v->h;
 	const int64_t *info = profile_info(v);
@@ -572,10 +588,6 @@ profiles_check(const AffModelView *v, AffPollFn poll, void *poll_arg, AffError *
 	int			stop = 0;
 	int			k;
 	bool		dense;
-
-	if (h->regularization != 0 || h->alpha != 0 || h->epsilon != 0 || h->seed != 0 ||
-		!isfinite(h->fit_seconds) || h->fit_seconds < 0)
-		return bad_value(err, "header options", 0, 0);
 	if (info[AFF_PINFO_KIND] != AFF_PROFILE_SPARSE && info[AFF_PINFO_KIND] != AFF_PROFILE_DENSE)
 		return bad_value(err, "kind", info[AFF_PINFO_KIND], 0);
 	dense = info[AFF_PINFO_KIND] == AFF_PROFILE_DENSE;
@@ -662,8 +674,8 @@ profiles_check(const AffModelView *v, AffPollFn poll, void *poll_arg, AffError *
 }
 
 /* The profile's figures for describe(), as a JSON fragment. */
-static void
-profiles_describe(const AffModelView *v, char *buf, size_t len)
+void
+aff_profiles_describe(const AffModelView *v, char *buf, size_t len)
 {
 	const int64_t *info = profile_info(v);
 	bool		dense = info[AFF_PINFO_KIND] == AFF_PROFILE_DENSE;
@@ -691,7 +703,7 @@ const AffMethod aff_method_item_profiles = {
 	(1u << AFF_SEC_PROFILE_VECTORS),
 	.options = AFF_OPT_BIT(AFF_OPT_NORMALIZATION) | AFF_OPT_BIT(AFF_OPT_MIN_DF),
 	.catalogue = true,
-	.item_row = profiles_item_row,
+	.item_row = aff_profiles_item_row,
 	.check_content = profiles_check,
-	.describe = profiles_describe,
+	.describe = aff_profiles_describe,
 };

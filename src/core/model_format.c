@@ -76,6 +76,9 @@ const AffSectionDef aff_section_defs[AFF_SEC_MAX + 1] = {
 	AFF_SEC_PROFILE_FEATURES, AFF_FORGET_KEEP},
 	{AFF_SEC_PROFILE_VECTORS, "profile_vectors", 4, AFF_NEED_METHOD_OPTIONAL, AFF_COUNT_FREE, 0,
 	AFF_FORGET_KEEP},
+	/* content: n_users x features, checked by its check_content */
+	{AFF_SEC_USER_PROFILES, "user_profiles", 4, AFF_NEED_METHOD, AFF_COUNT_FREE, 0,
+	AFF_FORGET_CUT_USER_SPAN},
 };
 
 size_t

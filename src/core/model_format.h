@@ -65,7 +65,9 @@
 #define AFF_SEC_PROFILE_FEATURES 25 /* int32 [nonzeros] feature indices, ascending per item */
 #define AFF_SEC_PROFILE_VALUES	26	/* float [nonzeros] values after normalisation */
 #define AFF_SEC_PROFILE_VECTORS 27	/* float [n_items * dimension] dense rows */
-#define AFF_SEC_MAX				27
+/* content: each user's preference vector over the profiles' features */
+#define AFF_SEC_USER_PROFILES	28	/* float [n_users * features] */
+#define AFF_SEC_MAX				28
 
 typedef struct AffModelHeader
 {
@@ -203,7 +205,8 @@ typedef enum AffSectionForget
 	AFF_FORGET_CUT_SEEN,		/* one element per training pair: the user's are cut */
 	AFF_FORGET_CUT_TEXT,		/* the user's text bytes are cut */
 	AFF_FORGET_CUT_OFFSETS,		/* offsets per user: the user's entry cut, later ones shifted */
-	AFF_FORGET_UNCOUNT			/* per-item user counts: the user's items count one less */
+	AFF_FORGET_UNCOUNT,			/* per-item user counts: the user's items count one less */
+	AFF_FORGET_CUT_USER_SPAN	/* count / n_users elements per user: the user's are cut */
 } AffSectionForget;
 
 typedef struct AffSectionDef

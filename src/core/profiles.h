@@ -79,4 +79,17 @@ extern AffStatus aff_profiles_build_dense(const int64_t *keys, const float *vecs
 										  AffProfileBuild *out, AffError *err);
 extern const char *aff_normalization_name(int code);
 
+/* Shared with the content method, whose values carry their profiles. */
+struct AffServe;
+extern void aff_profiles_item_row(const struct AffServe *s, int64_t it, float *sims,
+								  uint8_t *skip);
+extern AffStatus aff_profiles_check_sections(const AffModelView *v, AffPollFn poll,
+											 void *poll_arg, AffError *err);
+extern void aff_profiles_describe(const AffModelView *v, char *buf, size_t len);
+
+/* The content method's fit onto a profiles value's catalogue (method_content.c). */
+extern AffStatus aff_content_attach(AffMatrix *m, const AffModelView *pv,
+									AffModelParts *parts, const AffAllocator *a,
+									AffError *err);
+
 #endif							/* AFF_PROFILES_H */

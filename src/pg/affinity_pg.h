@@ -129,6 +129,14 @@ extern void describe_options(StringInfo s, const AffModelHeader *h);
 extern void refuse_catalogue(const AffModelView *v, const char *fn) pg_attribute_noreturn();
 extern void check_catalogue_call(FunctionCallInfo fcinfo, const AffModelView *v);
 
+/* Item profiles given to a fit, for method content (content.c) */
+extern bytea *fit_profiles_arg(FunctionCallInfo fcinfo, int argno, const FitOptions *o,
+							   MemoryContext cxt);
+extern void fit_profiles_missing(const FitOptions *o);
+extern void fit_profiles_hash_key(bytea *profiles, uint64 key[2]);
+extern void fit_profiles_attach(bytea *profiles, AffMatrix *m, AffModelParts *parts,
+								const AffAllocator *a);
+
 /* jsonb assembly (serving.c) */
 extern Jsonb *jsonb_from_cstring(const char *s);
 

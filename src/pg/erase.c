@@ -94,6 +94,13 @@ forget_section(const AffModelView *v, int k, int64 u, uint64 *count)
 		case AFF_FORGET_CUT_USER_ROW:
 			*count = n - h->factors;
 			return copy_without(src, n, d->elem_size, u * h->factors, (u + 1) * h->factors);
+		case AFF_FORGET_CUT_USER_SPAN:
+			{
+				uint64		span = n / (uint64) h->n_users;
+
+				*count = n - span;
+				return copy_without(src, n, d->elem_size, u * span, (u + 1) * span);
+			}
 		case AFF_FORGET_CUT_SEEN:
 			*count = n - (hi - lo);
 			return copy_without(src, n, d->elem_size, lo, hi);

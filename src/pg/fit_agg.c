@@ -64,6 +64,7 @@ typedef struct FitState
 	Size		wire_bytes;		/* size of the serialized form it came from */
 	bool		serialized;		/* rows handed on by serialfn, and freed */
 	bytea	   *result;			/* the model, once finalized */
+	bytea	   *profiles;		/* item profiles (method content), or NULL */
 } FitState;
 
 /*
@@ -183,6 +184,11 @@ fit_state_new(FunctionCallInfo fcinfo, MemoryContext aggcxt)
 		fit_options_parse(NULL, &st->opts);
 	st->have_options = true;
 	MemoryContextSwitchTo(old);
+	/* the item profiles of the five-argument form (content.c) */
+	if (PG_NARGS() > 5)
+		st->profiles = fit_profiles_arg(fcinfo, 5, &st->opts, st->cxt);
+	else
+		fit_profiles_missing(&st->opts);
 	return st;
 }
 
@@ -287,7 +293,7 @@ remap_rows(AffTriple *rows, int64 n, TextDict *users, TextDict *items)
  * remap the rows.
  */
 static void
-rekey_texts(FitState *st)
+rekey_texts_under(FitState *st, const uint64 *given)
 {
 	uint64		key[2];
 	int			tries;
@@ -297,7 +303,18 @@ rekey_texts(FitState *st)
 		if (tries == MAX_REKEY_TRIES)
 			elog(ERROR, "text keys of affinity.fit collide under %d random hash keys",
 				 MAX_REKEY_TRIES);
-		draw_hash_key(key);
+		if (given != NULL && tries > 0)
+			ereport(ERROR,
+					(errcode(ERRCODE_DATA_EXCEPTION),
+					 errmsg("two text keys of affinity.fit share a hash under the item profiles' key"),
+					 errhint("Build the item profiles again: they draw a new hash key.")));
+		if (given != NULL)
+		{
+			key[0] = given[0];
+			key[1] = given[1];
+		}
+		else
+			draw_hash_key(key);
 		if (!text_dict_rekey(st->user_texts, key))
 			continue;
 		if (text_dict_rekey(st->item_texts, key))
@@ -310,6 +327,12 @@ rekey_texts(FitState *st)
 	text_dict_rekey_finish(st->item_texts);
 	st->text_hash_key[0] = key[0];
 	st->text_hash_key[1] = key[1];
+}
+
+static void
+rekey_texts(FitState *st)
+{
+	rekey_texts_under(st, NULL);
 }
 
 /* Bytes the dictionaries hold, after they grew. */
@@ -1004,6 +1027,15 @@ fit_model(FitState *st)
 		saved_title = pnstrdup(cur, len);
 	}
 	show_phase("affinity.fit building the interaction matrix");
+	/* with item profiles, the texts take the profiles' hash key */
+	if (st->profiles != NULL && st->text_keys)
+	{
+		uint64		key[2];
+
+		fit_profiles_hash_key(st->profiles, key);
+		if (key[0] != st->text_hash_key[0] || key[1] != st->text_hash_key[1])
+			rekey_texts_under(st, key);
+	}
 	/* users and items are at most the rows until the matrix says */
 	check_memory(st, st->n_rows, Min(st->n_rows, AFF_MAX_ENTITIES),
 				 Min(st->n_rows, AFF_MAX_ENTITIES), false);
@@ -1026,6 +1058,8 @@ fit_model(FitState *st)
 	}
 	parts.data[AFF_SEC_POPULARITY] = item_popularity(&m);
 	parts.count[AFF_SEC_POPULARITY] = m.n_items;
+	if (st->profiles != NULL)
+		fit_profiles_attach(st->profiles, &m, &parts, &a);
 	method_fit(&m, &st->opts, &a, &parts);
 
 	show_phase("affinity.fit writing the model");

@@ -10,20 +10,40 @@
 #include "miscadmin.h"
 #include "utils/float.h"
 
+#include "../core/profiles.h"
+
+/*
+ * The vectors of one side and their length: the factors, or for a content
+ * model's users their preference vectors over the profiles' features.
+ */
+static const float *
+side_vectors(const AffModelView *v, bool users, const char *fn, int *dim)
+{
+	if (users && v->h->method == AFF_METHOD_CONTENT)
+	{
+		*dim = (int) ((const int64 *) v->sections[AFF_SEC_PROFILE_INFO])[AFF_PINFO_FEATURES];
+		return v->sections[AFF_SEC_USER_PROFILES];
+	}
+	require_factors(v, fn);
+	*dim = v->h->factors;
+	return users ? v->user_factors : v->item_factors;
+}
+
 /* Shared body of user_vector and item_vector. */
 static Datum
 one_vector(FunctionCallInfo fcinfo, bool users)
 {
 	AffModelView v;
 	int64		j;
+	int			dim;
+	const float *F;
 
 	model_fetch(fcinfo, 0, &v);
-	require_factors(&v, users ? "user_vector" : "item_vector");
+	F = side_vectors(&v, users, users ? "user_vector" : "item_vector", &dim);
 	j = key_arg_index(fcinfo, 1, &v, users);
 	if (j < 0)
 		PG_RETURN_NULL();
-	PG_RETURN_ARRAYTYPE_P(vector_array((users ? v.user_factors : v.item_factors) +
-									   (size_t) j * v.h->factors, v.h->factors));
+	PG_RETURN_ARRAYTYPE_P(vector_array(F + (size_t) j * dim, dim));
 }
 
 /* Shared body of user_vectors and item_vectors. */
@@ -35,6 +55,7 @@ all_vectors(FunctionCallInfo fcinfo, bool users)
 	int32	   *list = NULL;
 	int			n_list = 0;
 	const float *F;
+	int			dim;
 	int64		r;
 
 	materialize(fcinfo);
@@ -42,12 +63,11 @@ all_vectors(FunctionCallInfo fcinfo, bool users)
 		return (Datum) 0;
 	model_fetch(fcinfo, 0, &v);
 	check_output_keys(fcinfo, &v, 0, users);
-	require_factors(&v, users ? "user_vectors" : "item_vectors");
+	F = side_vectors(&v, users, users ? "user_vectors" : "item_vectors", &dim);
 	/* the text overloads take a list of keys (NULL: all) */
 	if (PG_NARGS() > 1 && !PG_ARGISNULL(1))
 		list = array_key_indices(fcinfo, 1, &v, users, &n_list);
 	n = list ? n_list : (users ? v.h->n_users : v.h->n_items);
-	F = users ? v.user_factors : v.item_factors;
 	for (r = 0; r < n; r++)
 	{
 		Datum		values[2];
@@ -55,7 +75,7 @@ all_vectors(FunctionCallInfo fcinfo, bool users)
 
 		CHECK_FOR_INTERRUPTS();
 		values[0] = key_datum(&v, users, j);
-		values[1] = PointerGetDatum(vector_array(F + (size_t) j * v.h->factors, v.h->factors));
+		values[1] = PointerGetDatum(vector_array(F + (size_t) j * dim, dim));
 		put_row(fcinfo, values);
 	}
 	return (Datum) 0;

@@ -149,7 +149,7 @@ choice_value(const AffOptionDef *d, JsonbValue *v)
 		for (i = 0; i < d->n_choices; i++)
 			if (strlen(d->choices[i]) == (size_t) v->val.string.len &&
 				strncmp(d->choices[i], v->val.string.val, v->val.string.len) == 0)
-				return i + 1;
+				return d->codes ? d->codes[i] : i + 1;
 	bad_value(d, show_value(v));
 	return -1;					/* not reached */
 }
