@@ -543,6 +543,13 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 		const AffSectionDef *d = &aff_section_defs[k];
 		uint64_t	want;
 
+		/* a section counted like another comes with it (loss and sweep_seconds, ...) */
+		if (d->count == AFF_COUNT_SAME_AS && (sec[k] == NULL) != (sec[d->same_as] == NULL))
+		{
+			aff_fail(err, AFF_ERR_CORRUPT, "invalid affinity.model value");
+			return aff_detail(err, "The value has a \"%s\" section without its \"%s\" section, or the other way round.",
+							  d->name, aff_section_defs[d->same_as].name);
+		}
 		if (sec[k] == NULL)
 		{
 			if (section_need(d, meth, h) > 0)

@@ -72,6 +72,7 @@ SEC = {
     19: ("profile_info", "q"), 20: ("feature_keys", "q"), 21: ("feature_text_off", "q"),
     22: ("feature_text", "B"), 23: ("feature_items", "i"), 24: ("profile_ptr", "q"),
     25: ("profile_features", "i"), 26: ("profile_values", "f"), 27: ("profile_vectors", "f"),
+    28: ("user_profiles", "f"),
 }
 KIND = {name: k for k, (name, _) in SEC.items()}
 METHOD = {"implicit_als": 1, "popularity": 2, "ease": 3, "item_knn": 4}
@@ -487,6 +488,15 @@ def _stray_factors(method):
     return run
 
 
+def _loss_alone(_):
+    """A model of a method that may carry a loss (any may) with a loss but no
+    sweep timings: the validator read the timings through a null pointer
+    (found by the fuzzer)."""
+    m = Model(synth("popularity", 3, 4))
+    m.sections["loss"] = [1.0, 2.0]
+    return m.encode()
+
+
 def _knn_edit(fn):
     def run(_):
         b = synth("item_knn", 4, 5)
@@ -577,6 +587,7 @@ BAD_OTHER = {
     "ease_weights_short": _ease_edit(lambda b: set_entry(b, KIND["item_weights"], count=24)),
     "popularity_with_factors": lambda _: _stray_factors("popularity")(synth("popularity", 3, 4)),
     "popularity_factors_huge": lambda _: _set_fixed(synth("popularity", 3, 4), "factors", 0x7FFFFFFF),
+    "loss_without_sweep_seconds": _loss_alone,
 }
 
 # The cases of sql/corrupt.sql, in its order: (case name, what it shows).
@@ -650,6 +661,18 @@ FROM generate_series(1, 6) i, generate_series(1, 2) f""", '{"min_document_freque
     ("profiles_vectors", """
 SELECT decode(affinity.item_profiles(i, ARRAY[i, 1 - i, i % 3]::real[], {opts})::text, 'base64')
 FROM generate_series(0, 7) i""", '{"normalization": "none"}'),
+    ("content_words", """
+SELECT decode(affinity.fit(u, i, w, {opts},
+                           (SELECT affinity.item_profiles(i, 'w' || (i * f) % 5, 1)
+                            FROM generate_series(1, 8) i, generate_series(1, 2) f))::text, 'base64')
+FROM (VALUES (1::bigint, 1::bigint, 1::real), (1, 2, 2), (2, 2, 1), (2, 5, 1), (3, 7, 4)) v(u, i, w)""",
+     '{"method": "content"}'),
+    ("content_vectors_text", """
+SELECT decode(affinity.fit(u, i, 1, {opts},
+                           (SELECT affinity.item_profiles('SKU-' || i, ARRAY[i, 2 - i, 1]::real[])
+                            FROM generate_series(0, 5) i))::text, 'base64')
+FROM (VALUES ('ana'::text, 'SKU-1'::text), ('ana', 'SKU-3'), ('bo', 'SKU-4')) v(u, i)""",
+     '{"method": "content", "regularization": 0.5}'),
     ("popularity_wide", """
 SELECT decode(affinity.fit(u, i, 1, {opts})::text, 'base64')
 FROM generate_series(1, 30) u, generate_series(1, 30) i WHERE (u * i) % 7 = 1""",
