@@ -543,6 +543,12 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 		const AffSectionDef *d = &aff_section_defs[k];
 		uint64_t	want;
 
+		if (sec[k] == NULL && section_need(d, meth, h) > 0)
+		{
+			aff_fail(err, AFF_ERR_CORRUPT, "invalid affinity.model value");
+			return aff_detail(err, "The value has no \"%s\" section, which a model of method \"%s\" with %s keys needs.",
+							  d->name, meth->name, aff_keys_name(h->key_type));
+		}
 		/* a section counted like another comes with it (loss and sweep_seconds, ...) */
 		if (d->count == AFF_COUNT_SAME_AS && (sec[k] == NULL) != (sec[d->same_as] == NULL))
 		{
@@ -551,15 +557,7 @@ aff_model_view(const uint8_t *buf, uint64_t len, AffModelView *v, AffError *err)
 							  d->name, aff_section_defs[d->same_as].name);
 		}
 		if (sec[k] == NULL)
-		{
-			if (section_need(d, meth, h) > 0)
-			{
-				aff_fail(err, AFF_ERR_CORRUPT, "invalid affinity.model value");
-				return aff_detail(err, "The value has no \"%s\" section, which a model of method \"%s\" with %s keys needs.",
-								  d->name, meth->name, aff_keys_name(h->key_type));
-			}
 			continue;
-		}
 		want = aff_section_expected_count(d, h, cnt);
 		if (want != UINT64_MAX && cnt[k] != want)
 		{
