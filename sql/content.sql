@@ -68,6 +68,28 @@ SELECT round(affinity.score(model, 1::bigint, 301::bigint)::numeric, 3) AS lante
   FROM cm;
 SELECT r.rank, r.past_item_id, round(r.contribution::numeric, 3) AS contribution
   FROM cm, affinity.reasons(cm.model, 1::bigint, 301::bigint) r ORDER BY r.rank;
+-- feature_reasons: which of the lantern's features make up the walker's
+-- score of it, largest first; all of them add up to the score
+SELECT r.rank, r.feature, round(r.contribution::numeric, 3) AS contribution
+  FROM cm, affinity.feature_reasons(cm.model, 1::bigint, 301::bigint, 3) r ORDER BY r.rank;
+SELECT f.n AS features, abs(f.total - affinity.score(cm.model, 1::bigint, 301::bigint)) < 1e-6 AS adds_up
+  FROM cm, LATERAL (SELECT count(*) AS n, sum(r.contribution) AS total
+					  FROM affinity.feature_reasons(cm.model, 1::bigint, 301::bigint, 100) r) f;
+-- and it is the product of the item's profile and the user's vector, feature by feature
+SELECT count(*) AS dims,
+	   max(abs(r.contribution - uv.x[d] * iv.q[d])) < 1e-6 AS products
+  FROM (SELECT affinity.fit(u, i, 1, '{"method": "content"}',
+						   (SELECT affinity.item_profiles(i, ARRAY[i, 3 - i, 1]::real[], '{"normalization": "none"}')
+							  FROM generate_series(1, 4) i)) AS m
+		  FROM (VALUES (1::bigint, 1::bigint), (1, 2), (2, 4)) v(u, i)) dm,
+	   LATERAL (SELECT affinity.user_vector(dm.m, 1::bigint) AS x) uv,
+	   LATERAL (SELECT ARRAY[3, 0, 1]::real[] AS q) iv,
+	   affinity.feature_reasons(dm.m, 1::bigint, 3::bigint, 10) r,
+	   LATERAL (SELECT substr(r.feature, 11)::int AS d) dd(d);
+SELECT * FROM cm, affinity.feature_reasons(cm.model, 1::bigint, 301::bigint, -1);
+SELECT count(*) FROM cm, affinity.feature_reasons(cm.model, 77::bigint, 301::bigint);
+SELECT * FROM (SELECT affinity.fit(customer, sku, qty, '{"method": "popularity"}') AS model FROM shop_purchases) p,
+	   affinity.feature_reasons(p.model, 1::bigint, 101::bigint);
 -- items like the new lantern: content cosine
 SELECT r.rank, r.item_id, round(r.similarity::numeric, 3) AS similarity
   FROM cm, affinity.items_like(cm.model, 301::bigint, 3) r ORDER BY r.rank;

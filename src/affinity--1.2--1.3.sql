@@ -14,6 +14,7 @@
 --   Beyond one server: the registry's writers refused on a hot standby
 --     with a hint to run them on the primary.
 --   Content-based filtering: fit with item profiles (method content).
+--   Feature reasons: the item features behind a content score.
 -- Each section stands alone; later changes of 1.3 go in sections of their
 -- own at the end.
 
@@ -502,3 +503,33 @@ COMMENT ON AGGREGATE affinity.fit(bigint, bigint, real, jsonb, affinity.model) I
 COMMENT ON AGGREGATE affinity.fit(text, text, real, jsonb, affinity.model) IS 'fit a content model over (user, item, weight) rows with text keys and item profiles (method content); options as jsonb';
 COMMENT ON AGGREGATE affinity.fit(bigint, text, real, jsonb, affinity.model) IS 'fit a content model over (user, item, weight) rows with bigint user keys, text item keys and item profiles (method content); options as jsonb';
 COMMENT ON AGGREGATE affinity.fit(text, bigint, real, jsonb, affinity.model) IS 'fit a content model over (user, item, weight) rows with text user keys, bigint item keys and item profiles (method content); options as jsonb';
+
+-- Feature reasons -----------------------------------------------------------
+
+-- For a model over item features (method content): which of an item's
+-- features make up a user's score of it, largest first.  One C function
+-- serves every key pair; the types of the arguments choose the overload.
+CREATE FUNCTION affinity.feature_reasons(model affinity.model, user_id bigint, item_id bigint,
+		k integer DEFAULT 5)
+	RETURNS TABLE (feature text, contribution real, rank integer)
+	AS 'MODULE_PATHNAME', 'affinity_feature_reasons' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	COST 1000 ROWS 5;
+CREATE FUNCTION affinity.feature_reasons(model affinity.model, user_id text, item_id text,
+		k integer DEFAULT 5)
+	RETURNS TABLE (feature text, contribution real, rank integer)
+	AS 'MODULE_PATHNAME', 'affinity_feature_reasons' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	COST 1000 ROWS 5;
+CREATE FUNCTION affinity.feature_reasons(model affinity.model, user_id bigint, item_id text,
+		k integer DEFAULT 5)
+	RETURNS TABLE (feature text, contribution real, rank integer)
+	AS 'MODULE_PATHNAME', 'affinity_feature_reasons' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	COST 1000 ROWS 5;
+CREATE FUNCTION affinity.feature_reasons(model affinity.model, user_id text, item_id bigint,
+		k integer DEFAULT 5)
+	RETURNS TABLE (feature text, contribution real, rank integer)
+	AS 'MODULE_PATHNAME', 'affinity_feature_reasons' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	COST 1000 ROWS 5;
+COMMENT ON FUNCTION affinity.feature_reasons(affinity.model, bigint, bigint, integer) IS 'which of the item''s features make up the user''s score of it (method content), largest first';
+COMMENT ON FUNCTION affinity.feature_reasons(affinity.model, text, text, integer) IS 'which of the item''s features make up the user''s score of it (method content), largest first';
+COMMENT ON FUNCTION affinity.feature_reasons(affinity.model, bigint, text, integer) IS 'which of the item''s features make up the user''s score of it (method content), largest first';
+COMMENT ON FUNCTION affinity.feature_reasons(affinity.model, text, bigint, integer) IS 'which of the item''s features make up the user''s score of it (method content), largest first';

@@ -204,6 +204,13 @@ typedef struct AffMethod
 	AffStatus	(*contributions) (const AffServe *s, int64_t u, int64_t i,
 								  float *contrib, AffError *err);
 	/*
+	 * For a method over item features: the share of each of item i's
+	 * features in user u's score of it (features feat[0 .. n), contrib),
+	 * returning n (at most the features of the model); NULL otherwise.
+	 */
+	int64_t		(*feature_contributions) (const AffServe *s, int64_t u, int64_t i,
+										  int32_t *feat, float *contrib);
+	/*
 	 * Content checks of the method's own sections and header fields, run
 	 * by validation after the format's checks (instead of the option
 	 * checks of the fitted methods); NULL for those.

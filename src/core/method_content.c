@@ -585,6 +585,42 @@ content_pair_score(const AffServe *s, int64_t u, int64_t i)
 }
 
 /*
+ * Item i's features' shares of u's score of it: q_i[f] x_u[f] for each
+ * feature f of the item's row (every dimension for dense profiles); they
+ * add up to the score.
+ */
+static int64_t
+content_feature_contributions(const AffServe *s, int64_t u, int64_t i, int32_t *feat,
+							  float *contrib)
+{
+	Prof		P;
+	const float *x;
+	int64_t		n = 0;
+	int64_t		j;
+
+	prof_of(s->v->sections, s->v->h->n_items, &P);
+	x = user_vector(s->v, u);
+	if (P.dense)
+	{
+		const float *q = P.X + (size_t) i * P.F;
+		int			d;
+
+		for (d = 0; d < P.F; d++)
+		{
+			feat[n] = d;
+			contrib[n++] = (float) ((double) q[d] * x[d]);
+		}
+		return n;
+	}
+	for (j = P.ptr[i]; j < P.ptr[i + 1]; j++)
+	{
+		feat[n] = P.fi[j];
+		contrib[n++] = (float) ((double) P.fv[j] * x[P.fi[j]]);
+	}
+	return n;
+}
+
+/*
  * Solve (Q^T C Q + lambda I) x = rhs by conjugate gradients, C = 1 + d_j on
  * the n items idx and 1 elsewhere; products with Q^T Q go through Q.  The
  * system is symmetric positive definite (lambda > 0), so CG converges in at
@@ -822,6 +858,7 @@ const AffMethod aff_method_content = {
 	.item_row = aff_profiles_item_row,
 	.pair_score = content_pair_score,
 	.contributions = content_contributions,
+	.feature_contributions = content_feature_contributions,
 	.check_content = content_check,
 	.describe = aff_profiles_describe,
 };

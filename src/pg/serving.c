@@ -14,13 +14,16 @@
 #include "serving_common.h"
 
 #include <float.h>
+#include <limits.h>
 #include <math.h>
 
 #include "catalog/pg_type.h"
 #include "funcapi.h"
 #include "mb/pg_wchar.h"
 #include "utils/array.h"
+#include "utils/builtins.h"
 
+#include "../core/profiles.h"
 #include "../core/serve.h"
 #include "text_keys.h"
 
@@ -599,6 +602,90 @@ affinity_reasons(PG_FUNCTION_ARGS)
 		Datum		values[3];
 
 		values[0] = key_datum(v, false, v->seen_items[v->seen_ptr[u] + t.heap[r].index]);
+		values[1] = Float4GetDatum(t.heap[r].score);
+		values[2] = Int32GetDatum((int32) (r + 1));
+		put_row(fcinfo, values);
+	}
+	return (Datum) 0;
+}
+
+PG_FUNCTION_INFO_V1(affinity_feature_reasons);
+
+/*
+ * The name of feature f of a model over item features: its text for
+ * feature rows, "dimension N" (from 1) for dense vectors.
+ */
+static Datum
+feature_name(const AffModelView *v, int32 f)
+{
+	const int64 *info = v->sections[AFF_SEC_PROFILE_INFO];
+	const int64 *off = v->sections[AFF_SEC_FEATURE_TEXT_OFF];
+	const char *text = v->sections[AFF_SEC_FEATURE_TEXT];
+
+	if (info[AFF_PINFO_KIND] == AFF_PROFILE_DENSE || off == NULL)
+		return CStringGetTextDatum(psprintf("dimension %d", f + 1));
+	return PointerGetDatum(cstring_to_text_with_len(text + off[f], (int) (off[f + 1] - off[f])));
+}
+
+/*
+ * feature_reasons(model, user_id, item_id, k) -> (feature, contribution,
+ * rank): which of the item's features push it up for the user, and by how
+ * much (a model over item features: method content).
+ */
+Datum
+affinity_feature_reasons(PG_FUNCTION_ARGS)
+{
+	CachedModel *e;
+	const AffModelView *v;
+	const AffMethod *meth;
+	AffServe	s;
+	AffAllocator a;
+	int64		k;
+	int64		u;
+	int64		i;
+	int64		n;
+	int64		r;
+	int32	   *feat;
+	float	   *contrib;
+	AffTopK		t;
+	AffItemFilter flt;
+
+	materialize(fcinfo);
+	if (PG_ARGISNULL(0) || PG_ARGISNULL(1) || PG_ARGISNULL(2))
+		return (Datum) 0;
+	e = model_get(fcinfo, 0);
+	v = &e->view;
+	meth = model_method(v);
+	if (meth->feature_contributions == NULL)
+		ereport(ERROR,
+				(errcode(ERRCODE_FEATURE_NOT_SUPPORTED),
+				 errmsg("feature_reasons needs a model over item features"),
+				 errdetail("This model was fitted with method \"%s\", which scores no item features.",
+						   aff_method_name(v->h->method)),
+				 errhint("Fit with method \"content\" and item profiles; affinity.reasons names the past purchases behind a score for any personal model.")));
+	k = get_k(fcinfo, 3, INT_MAX);
+	u = key_arg_index(fcinfo, 1, v, true);
+	i = key_arg_index(fcinfo, 2, v, false);
+	if (u < 0 || i < 0 || k == 0)
+		return (Datum) 0;
+	n = ((const int64 *) v->sections[AFF_SEC_PROFILE_INFO])[AFF_PINFO_FEATURES];
+	feat = palloc(sizeof(int32) * (n + 1));
+	contrib = palloc(sizeof(float) * (n + 1));
+	serve_context(e, &s, &a, 0);
+	n = meth->feature_contributions(&s, u, i, feat, contrib);
+
+	/* the largest shares first, as reasons ranks past purchases */
+	aff_topk_init(&t, palloc(sizeof(AffScored) * Max(Min(k, n), 1)), Min(k, n));
+	memset(&flt, 0, sizeof(flt));
+	r = aff_topk_scores(contrib, n, &flt, &t);
+	if (r >= 0)
+		check_finite_scores(v, false, i, psprintf("the features of user %s", key_cstring(v, true, u)));
+	n = aff_topk_finish(&t);
+	for (r = 0; r < n; r++)
+	{
+		Datum		values[3];
+
+		values[0] = feature_name(v, feat[t.heap[r].index]);
 		values[1] = Float4GetDatum(t.heap[r].score);
 		values[2] = Int32GetDatum((int32) (r + 1));
 		put_row(fcinfo, values);
