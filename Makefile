@@ -20,6 +20,7 @@ OBJS = \
 	src/core/method_ease.o \
 	src/core/method_knn.o \
 	src/core/method_profiles.o \
+	src/core/method_sequences.o \
 	src/core/serve.o \
 	src/pg/guc.o \
 	src/pg/options.o \
@@ -34,7 +35,8 @@ OBJS = \
 	src/pg/erase.o \
 	src/pg/text_keys.o \
 	src/pg/method_glue.o \
-	src/pg/profiles.o
+	src/pg/profiles.o \
+	src/pg/sequences.o
 
 EXTENSION = affinity
 EXTVERSION = 1.3

@@ -87,6 +87,7 @@ extern int	aff_mul_overflows(size_t a, size_t b, size_t *result);
 #define AFF_METHOD_EASE			3
 #define AFF_METHOD_ITEM_KNN		4
 #define AFF_METHOD_ITEM_PROFILES	5	/* item content, no users (profiles.h) */
+#define AFF_METHOD_SEQUENTIAL_RULES	6	/* rules over ordered events, no users (sequences.h) */
 
 #define AFF_SOLVER_CG			1
 #define AFF_SOLVER_CHOLESKY		2

@@ -76,6 +76,8 @@ const AffSectionDef aff_section_defs[AFF_SEC_MAX + 1] = {
 	AFF_SEC_PROFILE_FEATURES, AFF_FORGET_KEEP},
 	{AFF_SEC_PROFILE_VECTORS, "profile_vectors", 4, AFF_NEED_METHOD_OPTIONAL, AFF_COUNT_FREE, 0,
 	AFF_FORGET_KEEP},
+	/* sequential_rules: its check_content checks the figures */
+	{AFF_SEC_SEQUENCE_INFO, "sequence_info", 8, AFF_NEED_METHOD, AFF_COUNT_FIXED, 12, AFF_FORGET_KEEP},
 };
 
 size_t

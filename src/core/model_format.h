@@ -65,7 +65,9 @@
 #define AFF_SEC_PROFILE_FEATURES 25 /* int32 [nonzeros] feature indices, ascending per item */
 #define AFF_SEC_PROFILE_VALUES	26	/* float [nonzeros] values after normalisation */
 #define AFF_SEC_PROFILE_VECTORS 27	/* float [n_items * dimension] dense rows */
-#define AFF_SEC_MAX				27
+/* sequential_rules (sequences.h): its rules are in the neighbour sections */
+#define AFF_SEC_SEQUENCE_INFO	28	/* int64 [12]: window, successors, counts */
+#define AFF_SEC_MAX				28
 
 typedef struct AffModelHeader
 {

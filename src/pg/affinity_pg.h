@@ -76,6 +76,7 @@ extern bool affinity_verbose;
 typedef AffOptions FitOptions;
 
 extern void fit_options_parse(Jsonb *options, FitOptions *o);
+extern void fit_option_set(FitOptions *o, const char *key, JsonbValue *v);
 extern int	resolve_threads(int requested);
 
 /* Engine glue (model_io.c) */
@@ -128,6 +129,9 @@ extern void describe_options(StringInfo s, const AffModelHeader *h);
 /* Item profiles (profiles.c) */
 extern void refuse_catalogue(const AffModelView *v, const char *fn) pg_attribute_noreturn();
 extern void check_catalogue_call(FunctionCallInfo fcinfo, const AffModelView *v);
+
+/* Sequences (sequences.c) */
+extern void refuse_sequences(const AffModelView *v, const char *fn) pg_attribute_noreturn();
 
 /* jsonb assembly (serving.c) */
 extern Jsonb *jsonb_from_cstring(const char *s);

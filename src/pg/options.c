@@ -43,6 +43,8 @@ defaults(FitOptions *o)
 	o->verbose = affinity_verbose;
 	o->normalization = AFF_NORM_L2;
 	o->min_document_frequency = 1;
+	o->window = 10;
+	o->successors = 100;
 }
 
 static void
@@ -154,9 +156,12 @@ choice_value(const AffOptionDef *d, JsonbValue *v)
 	return -1;					/* not reached */
 }
 
-/* Apply one jsonb key and value through the option table. */
-static void
-set_option(FitOptions *o, const char *key, JsonbValue *v)
+/*
+ * Apply one jsonb key and value through the option table (also used by
+ * affinity.fit_sequences, sequences.c).
+ */
+void
+fit_option_set(FitOptions *o, const char *key, JsonbValue *v)
 {
 	bool		deprecated;
 	const AffOptionDef *d = aff_option_by_name(key, strlen(key), &deprecated);
@@ -262,7 +267,7 @@ fit_options_parse(Jsonb *options, FitOptions *o)
 			if (tok == WJB_KEY)
 				key = pnstrdup(v.val.string.val, v.val.string.len);
 			else if (tok == WJB_VALUE)
-				set_option(o, key, &v);
+				fit_option_set(o, key, &v);
 		}
 	}
 	if (o->regularization < 0)

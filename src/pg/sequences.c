@@ -1,0 +1,808 @@
+/*
+ * sequences.c
+ *		The affinity.fit_sequences aggregate (ordered events -> a model value
+ *		of method sequential_rules, core/method_sequences.c) and its serving
+ *		functions: next_items for one session and next_items_for_all for
+ *		many; and the refusal of the functions that such a value cannot
+ *		serve.
+ *
+ * Rows are (sequence, item, position [, options]).  Sequence and item keys
+ * are bigint or text, read from the call's argument types; the position is
+ * bigint (an integer column is cast to it), timestamp or timestamptz, kept
+ * as its int64 value (microseconds for timestamps), so it orders the
+ * events of a sequence exactly.  Every text becomes a SipHash key under one
+ * random key that the state draws (the header's text_hash_key), as the
+ * fit's text keys do (fit_agg.c); two texts that share a key make the
+ * state draw another and re-key.  The memory the state holds and the build
+ * will need is checked against affinity.max_fit_memory as the state grows.
+ * A row with a NULL sequence, item or position is skipped and counted.
+ *
+ * The build sorts the events, so the order in which rows arrive never
+ * matters.  The aggregate has no combine function, so PostgreSQL never
+ * splits it across parallel workers (a parallel scan below it still feeds
+ * the one state): merging two states would have to re-key the text
+ * dictionaries of one of them, and the build's sort, not the transition,
+ * is the larger part of the work.
+ */
+#include "serving_common.h"
+
+#include <math.h>
+
+#include "catalog/pg_type.h"
+#include "common/pg_prng.h"
+#include "funcapi.h"
+#include "miscadmin.h"
+#include "utils/array.h"
+#include "utils/builtins.h"
+#include "utils/lsyscache.h"
+#include "utils/memutils.h"
+#include "utils/timestamp.h"
+
+#include "../core/sequences.h"
+#include "../core/serve.h"
+#include "text_keys.h"
+
+#define MAX_REKEY_TRIES 8
+
+typedef struct SeqState
+{
+	MemoryContext cxt;			/* holds the state and all it owns */
+	bool		text_seqs;
+	bool		text_items;
+	int			position_type;	/* AFF_POSITION_* */
+	bool		opts_done;
+	FitOptions	opts;
+	uint64		hash_key[2];
+	TextDict   *seqs;			/* text sequence keys, or NULL */
+	TextDict   *items;			/* text item keys, or NULL */
+	AffEvent   *ev;
+	int64		n;
+	int64		cap;
+	int64		rows_read;
+	int64		rows_null;
+	bytea	   *result;			/* the value, once built */
+} SeqState;
+
+static void
+draw_key(uint64 key[2])
+{
+	do
+	{
+		if (!pg_strong_random(key, sizeof(uint64) * 2))
+			ereport(ERROR,
+					(errcode(ERRCODE_INTERNAL_ERROR),
+					 errmsg("could not generate a random hash key for affinity.fit_sequences")));
+	} while (key[0] == 0 && key[1] == 0);
+}
+
+/* Bytes the state holds and the build will need besides. */
+static double
+state_need(const SeqState *st, int64 cap)
+{
+	double		texts = 0;
+
+	if (st->seqs)
+		texts += (double) text_dict_memory(st->seqs);
+	if (st->items)
+		texts += (double) text_dict_memory(st->items) + 2.0 * st->items->bytes;
+	return (double) cap * sizeof(AffEvent) +
+		aff_sequences_build_bytes(st->n, st->opts_done ? st->opts.successors : 100) + texts;
+}
+
+/* Refuse to go on past affinity.max_fit_memory. */
+static void
+check_memory(const SeqState *st, int64 cap)
+{
+	double		limit = (double) affinity_max_fit_memory_mb * 1024.0 * 1024.0;
+	double		need = state_need(st, cap);
+
+	if (limit <= 0 || need <= limit)
+		return;
+	ereport(ERROR,
+			(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
+			 errmsg("affinity.fit_sequences would need about %.0f MB, over affinity.max_fit_memory",
+					need / (1024.0 * 1024.0)),
+			 errdetail("Collecting " INT64_FORMAT " events%s; affinity.max_fit_memory is %d MB.",
+					   st->n, st->items ? psprintf(" of " INT64_FORMAT " distinct items",
+												   text_dict_count(st->items)) : "",
+					   affinity_max_fit_memory_mb),
+			 errhint("Raise affinity.max_fit_memory, or keep fewer events in the query (recent ones, for example).")));
+}
+
+/*
+ * The options: "method" (only "sequential_rules" so far), "window" and
+ * "successors"; an option of affinity.fit that does not apply is refused,
+ * naming it.
+ */
+static void
+parse_options(Jsonb *j, FitOptions *o)
+{
+	JsonbIterator *it;
+	JsonbValue	v;
+	JsonbIteratorToken tok;
+	char	   *key = NULL;
+
+	fit_options_parse(NULL, o);
+	if (j == NULL)
+		return;
+	if (!JB_ROOT_IS_OBJECT(j))
+		ereport(ERROR,
+				(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
+				 errmsg("affinity.fit_sequences options must be a jsonb object"),
+				 errhint("Write them like '{\"window\": 5, \"successors\": 50}'.")));
+	it = JsonbIteratorInit(&j->root);
+	while ((tok = JsonbIteratorNext(&it, &v, true)) != WJB_DONE)
+	{
+		bool		deprecated;
+		const AffOptionDef *d;
+
+		if (tok == WJB_KEY)
+		{
+			key = pnstrdup(v.val.string.val, v.val.string.len);
+			continue;
+		}
+		if (tok != WJB_VALUE)
+			continue;
+		if (strcmp(key, "method") == 0)
+		{
+			if (v.type != jbvString || v.val.string.len != strlen("sequential_rules") ||
+				strncmp(v.val.string.val, "sequential_rules", v.val.string.len) != 0)
+				ereport(ERROR,
+						(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
+						 errmsg("invalid value for affinity.fit_sequences option \"method\""),
+						 errdetail("The value given is %s.",
+								   v.type == jbvString ?
+								   psprintf("\"%.*s\"", v.val.string.len, v.val.string.val) :
+								   "not a string"),
+						 errhint("\"method\" takes \"sequential_rules\".")));
+			continue;
+		}
+		d = aff_option_by_name(key, strlen(key), &deprecated);
+		if (d == NULL || !(aff_method_sequential_rules.options & AFF_OPT_BIT(d->id)))
+			ereport(ERROR,
+					(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
+					 errmsg("option \"%s\" does not apply to affinity.fit_sequences", key),
+					 errhint("affinity.fit_sequences takes \"method\", \"window\" and \"successors\".")));
+		fit_option_set(o, key, &v);
+	}
+}
+
+static SeqState *
+get_state(FunctionCallInfo fcinfo)
+{
+	MemoryContext aggcxt;
+	SeqState   *st;
+	MemoryContext cxt;
+	Oid			pt;
+
+	if (!AggCheckCallContext(fcinfo, &aggcxt))
+		elog(ERROR, "affinity.fit_sequences transition called in non-aggregate context");
+	if (!PG_ARGISNULL(0))
+		return (SeqState *) PG_GETARG_POINTER(0);
+	cxt = AllocSetContextCreate(aggcxt, "affinity fit_sequences", ALLOCSET_DEFAULT_SIZES);
+	st = MemoryContextAllocZero(cxt, sizeof(SeqState));
+	st->cxt = cxt;
+	st->text_seqs = get_fn_expr_argtype(fcinfo->flinfo, 1) == TEXTOID;
+	st->text_items = get_fn_expr_argtype(fcinfo->flinfo, 2) == TEXTOID;
+	pt = get_fn_expr_argtype(fcinfo->flinfo, 3);
+	if (pt == INT8OID)
+		st->position_type = AFF_POSITION_NUMBER;
+	else if (pt == TIMESTAMPOID)
+		st->position_type = AFF_POSITION_TIMESTAMP;
+	else if (pt == TIMESTAMPTZOID)
+		st->position_type = AFF_POSITION_TIMESTAMPTZ;
+	else
+		ereport(ERROR,
+				(errcode(ERRCODE_DATATYPE_MISMATCH),
+				 errmsg("affinity.fit_sequences positions must be bigint, timestamp or timestamptz"),
+				 errdetail("The position has type %s.", format_type_be(pt)),
+				 errhint("Cast the position, for example position::bigint.")));
+	draw_key(st->hash_key);
+	if (st->text_seqs)
+		st->seqs = text_dict_create(cxt);
+	if (st->text_items)
+		st->items = text_dict_create(cxt);
+	return st;
+}
+
+/* Re-key both dictionaries under a new key and remap the events. */
+static void
+rekey(SeqState *st)
+{
+	uint64		key[2];
+	int64		i;
+	int			tries;
+
+	for (tries = 0;; tries++)
+	{
+		if (tries == MAX_REKEY_TRIES)
+			elog(ERROR, "texts of affinity.fit_sequences collide under %d random hash keys",
+				 MAX_REKEY_TRIES);
+		draw_key(key);
+		if (st->seqs && !text_dict_rekey(st->seqs, key))
+			continue;
+		if (st->items && !text_dict_rekey(st->items, key))
+		{
+			if (st->seqs)
+				text_dict_rekey_abort(st->seqs);
+			continue;
+		}
+		break;
+	}
+	for (i = 0; i < st->n; i++)
+	{
+		if ((i & 0xffff) == 0xffff)
+			CHECK_FOR_INTERRUPTS();
+		if (st->seqs)
+			st->ev[i].seq = text_dict_mapped(st->seqs, st->ev[i].seq);
+		if (st->items)
+			st->ev[i].item = text_dict_mapped(st->items, st->ev[i].item);
+	}
+	if (st->seqs)
+		text_dict_rekey_finish(st->seqs);
+	if (st->items)
+		text_dict_rekey_finish(st->items);
+	st->hash_key[0] = key[0];
+	st->hash_key[1] = key[1];
+}
+
+/* The int64 keys of the row's sequence and item (texts through their dictionaries). */
+static void
+row_keys(FunctionCallInfo fcinfo, SeqState *st, int64 *sk, int64 *ik)
+{
+	text	   *s = st->text_seqs ? PG_GETARG_TEXT_PP(1) : NULL;
+	text	   *it = st->text_items ? PG_GETARG_TEXT_PP(2) : NULL;
+	int64		before = (st->seqs ? text_dict_count(st->seqs) : 0) +
+		(st->items ? text_dict_count(st->items) : 0);
+	MemoryContext old;
+
+	if (s == NULL)
+		*sk = PG_GETARG_INT64(1);
+	if (it == NULL)
+		*ik = PG_GETARG_INT64(2);
+	if (s == NULL && it == NULL)
+		return;
+	old = MemoryContextSwitchTo(st->cxt);
+	for (;;)
+	{
+		bool		collision = false;
+
+		if (s != NULL)
+			*sk = text_dict_add(st->seqs, st->hash_key, VARDATA_ANY(s),
+								VARSIZE_ANY_EXHDR(s), &collision);
+		if (!collision && it != NULL)
+			*ik = text_dict_add(st->items, st->hash_key, VARDATA_ANY(it),
+								VARSIZE_ANY_EXHDR(it), &collision);
+		if (!collision)
+			break;
+		rekey(st);
+	}
+	MemoryContextSwitchTo(old);
+	if ((st->seqs ? text_dict_count(st->seqs) : 0) +
+		(st->items ? text_dict_count(st->items) : 0) != before)
+		check_memory(st, st->cap);
+}
+
+/* Room for one more event. */
+static void
+reserve_event(SeqState *st)
+{
+	int64		cap;
+
+	if (st->n < st->cap)
+		return;
+	cap = st->cap == 0 ? 1024 : st->cap * 2;
+	if (cap > AFF_MAX_ENTITIES)
+		cap = AFF_MAX_ENTITIES;
+	if (st->n >= cap)
+		ereport(ERROR,
+				(errcode(ERRCODE_PROGRAM_LIMIT_EXCEEDED),
+				 errmsg("affinity.fit_sequences received too many events"),
+				 errdetail("It holds " INT64_FORMAT " events, the most one value can take.", st->n)));
+	check_memory(st, cap);
+	if (st->ev == NULL)
+		st->ev = MemoryContextAllocHuge(st->cxt, sizeof(AffEvent) * cap);
+	else
+		st->ev = repalloc_huge(st->ev, sizeof(AffEvent) * cap);
+	st->cap = cap;
+}
+
+PG_FUNCTION_INFO_V1(affinity_fit_sequences_transfn);
+
+/*
+ * (state, sequence bigint|text, item bigint|text, position bigint|
+ * timestamp|timestamptz [, options]): one event.
+ */
+Datum
+affinity_fit_sequences_transfn(PG_FUNCTION_ARGS)
+{
+	SeqState   *st = get_state(fcinfo);
+	int64		sk = 0;
+	int64		ik = 0;
+
+	if (st->result != NULL)
+		elog(ERROR, "affinity.fit_sequences state used after its final step");
+	if (!st->opts_done)
+	{
+		parse_options(PG_NARGS() > 4 && !PG_ARGISNULL(4) ? PG_GETARG_JSONB_P(4) : NULL,
+					  &st->opts);
+		st->opts_done = true;
+	}
+	st->rows_read++;
+	if (PG_ARGISNULL(1) || PG_ARGISNULL(2) || PG_ARGISNULL(3))
+	{
+		st->rows_null++;
+		PG_RETURN_POINTER(st);
+	}
+	row_keys(fcinfo, st, &sk, &ik);
+	reserve_event(st);
+	st->ev[st->n].seq = sk;
+	st->ev[st->n].item = ik;
+	/* Timestamp, TimestampTz and int8 are all an int64 Datum */
+	st->ev[st->n].pos = PG_GETARG_INT64(3);
+	st->n++;
+	PG_RETURN_POINTER(st);
+}
+
+static bytea *
+build_value(SeqState *st)
+{
+	static const int64 zero_off[1] = {0};
+	MemoryContext work = AllocSetContextCreate(CurrentMemoryContext, "affinity fit_sequences build",
+											   ALLOCSET_DEFAULT_SIZES);
+	MemoryContext old = MemoryContextSwitchTo(work);
+	AffAllocator a = context_allocator(work);
+	AffSeqParams p;
+	AffSeqBuild out;
+	AffModelParts parts;
+	AffError	err;
+	AffStatus	rc;
+	instr_time	t0;
+	bytea	   *value;
+
+	INSTR_TIME_SET_CURRENT(t0);
+	memset(&parts, 0, sizeof(parts));
+	memset(&p, 0, sizeof(p));
+	p.window = st->opts.window;
+	p.successors = st->opts.successors;
+	p.position_type = st->position_type;
+	p.poll = engine_poll;
+	rc = aff_sequences_build(st->ev, st->n, &p, &a, &parts, &out, &err);
+	engine_check(rc, &err);
+
+	parts.h.key_type = st->text_items ? AFF_KEYS_TEXT : AFF_KEYS_BIGINT;
+	parts.h.text_hash_key[0] = st->hash_key[0];
+	parts.h.text_hash_key[1] = st->hash_key[1];
+	parts.h.rows_read = st->rows_read;
+	parts.h.rows_skipped_null = st->rows_null;
+	parts.h.duplicates_summed = out.repeats_merged;
+	if (st->text_items)
+	{
+		int64	   *off;
+		char	   *bytes;
+		uint64		len;
+
+		parts.data[AFF_SEC_USER_TEXT_OFF] = zero_off;
+		parts.count[AFF_SEC_USER_TEXT_OFF] = 1;
+		parts.data[AFF_SEC_USER_TEXT] = zero_off;
+		parts.count[AFF_SEC_USER_TEXT] = 0;
+		text_dict_layout(st->items, out.item_keys, out.n_items, &off, &bytes, &len);
+		parts.data[AFF_SEC_ITEM_TEXT_OFF] = off;
+		parts.count[AFF_SEC_ITEM_TEXT_OFF] = (uint64) out.n_items + 1;
+		parts.data[AFF_SEC_ITEM_TEXT] = bytes;
+		parts.count[AFF_SEC_ITEM_TEXT] = len;
+	}
+	parts.h.fit_seconds = seconds_since(t0);
+	MemoryContextSwitchTo(st->cxt);
+	value = model_build(&parts);
+	MemoryContextSwitchTo(old);
+	MemoryContextDelete(work);
+	return value;
+}
+
+PG_FUNCTION_INFO_V1(affinity_fit_sequences_finalfn);
+
+Datum
+affinity_fit_sequences_finalfn(PG_FUNCTION_ARGS)
+{
+	SeqState   *st;
+
+	if (!AggCheckCallContext(fcinfo, NULL))
+		elog(ERROR, "affinity_fit_sequences_finalfn called in non-aggregate context");
+	if (PG_ARGISNULL(0))
+		ereport(ERROR,
+				(errcode(ERRCODE_DATA_EXCEPTION),
+				 errmsg("affinity.fit_sequences received no rows"),
+				 errhint("Check the query that feeds it; rules need events of at least one sequence.")));
+	st = (SeqState *) PG_GETARG_POINTER(0);
+	if (st->result == NULL)
+	{
+		if (st->n == 0)
+			ereport(ERROR,
+					(errcode(ERRCODE_DATA_EXCEPTION),
+					 errmsg("affinity.fit_sequences received no usable rows"),
+					 errdetail("Of " INT64_FORMAT " rows, " INT64_FORMAT " had a NULL sequence, item or position.",
+							   st->rows_read, st->rows_null),
+					 errhint("Rules need events with a sequence, an item and a position.")));
+		st->result = build_value(st);
+		/* the events are not needed any more (the build sorted them) */
+		pfree(st->ev);
+		st->ev = NULL;
+		st->n = st->cap = 0;
+	}
+	PG_RETURN_POINTER(st->result);
+}
+
+/* Serving ------------------------------------------------------------- */
+
+static const int64_t *
+sequence_info(const AffModelView *v)
+{
+	return (const int64_t *) v->sections[AFF_SEC_SEQUENCE_INFO];
+}
+
+/*
+ * Refuse to serve a rules value from function fn: it relates items to the
+ * items that follow them and knows no users.
+ */
+void
+refuse_sequences(const AffModelView *v, const char *fn)
+{
+	const int64_t *info = sequence_info(v);
+
+	ereport(ERROR,
+			(errcode(ERRCODE_FEATURE_NOT_SUPPORTED),
+			 errmsg("%s cannot serve sequential rules", fn),
+			 errdetail("The value is a sequential_rules value of " INT64_FORMAT " items from " INT64_FORMAT " sequences: rules from an item to the next, without users.",
+					   v->h->n_items, info ? info[AFF_SINFO_SEQUENCES] : 0),
+			 errhint("Use affinity.next_items for the next items of a session, affinity.items_like for the successors of one item.")));
+}
+
+/* A rules value, or an error for a model of another method. */
+static CachedModel *
+rules_model(FunctionCallInfo fcinfo, const char *fn)
+{
+	CachedModel *e = model_get(fcinfo, 0);
+
+	if (e->view.h->method != AFF_METHOD_SEQUENTIAL_RULES)
+		ereport(ERROR,
+				(errcode(ERRCODE_FEATURE_NOT_SUPPORTED),
+				 errmsg("%s needs a model of ordered events", fn),
+				 errdetail("This model was fitted with method \"%s\", which knows no order of items.",
+						   aff_method_name(e->view.h->method)),
+				 errhint("Fit one with affinity.fit_sequences; for the items that go with a cart, use affinity.top_items(model, basket).")));
+	return e;
+}
+
+/*
+ * The recent items of a session as the rule scores them: elems[0 .. n) in
+ * order (idx -1 for an unknown or NULL element), the last counting fully
+ * and the one j steps back 1 / j, up to the window (an unknown item still
+ * takes its step; a NULL element takes none).  Fills out_idx (ascending,
+ * without repeats) and out_w (weights summed for a recurring item);
+ * returns their count.
+ */
+static int
+recent_weights(const int32 *idx, const bool *is_null, int n, int window, int32 *out_idx,
+			   float *out_w)
+{
+	int			m = 0;
+	int			j = 0;
+	int			i;
+	int			a;
+
+	for (i = n - 1; i >= 0 && j < window; i--)
+	{
+		if (is_null[i])
+			continue;
+		j++;
+		if (idx[i] < 0)
+			continue;
+		for (a = 0; a < m && out_idx[a] != idx[i]; a++)
+			;
+		if (a == m)
+		{
+			out_idx[m] = idx[i];
+			out_w[m++] = 0;
+		}
+		out_w[a] += 1.0f / (float) j;
+	}
+	/* ascending indices, weights alongside (m is at most the window) */
+	for (i = 1; i < m; i++)
+		for (a = i; a > 0 && out_idx[a] < out_idx[a - 1]; a--)
+		{
+			int32		ti = out_idx[a];
+			float		tw = out_w[a];
+
+			out_idx[a] = out_idx[a - 1];
+			out_w[a] = out_w[a - 1];
+			out_idx[a - 1] = ti;
+			out_w[a - 1] = tw;
+		}
+	return m;
+}
+
+/* What a ranking of next items shares across sessions: the filters and buffers. */
+typedef struct NextRanking
+{
+	const AffModelView *v;
+	AffServe	s;
+	AffAllocator a;
+	int64		k;
+	int			window;
+	uint8	   *excluded;		/* n_items mask of the exclude argument */
+	AffItemFilter flt;			/* its skip is rebuilt per session */
+	uint8	   *skip;
+	float	   *scores;
+	int32	   *ridx;
+	float	   *rw;
+	AffScored  *heap;
+} NextRanking;
+
+static void
+ranking_init(FunctionCallInfo fcinfo, NextRanking *r, CachedModel *e, int64 k,
+			 int argno_exclude, int argno_cand)
+{
+	const AffModelView *v = &e->view;
+	int64		n = v->h->n_items;
+
+	memset(r, 0, sizeof(*r));
+	r->v = v;
+	r->k = k;
+	r->window = (int) sequence_info(v)[AFF_SINFO_WINDOW];
+	serve_context(e, &r->s, &r->a, 0);
+	r->excluded = palloc0(n);
+	if (!PG_ARGISNULL(argno_exclude))
+	{
+		int			ne;
+		int32	   *idx = array_key_indices(fcinfo, argno_exclude, v, false, &ne);
+		int			i;
+
+		for (i = 0; i < ne; i++)
+			r->excluded[idx[i]] = 1;
+	}
+	if (!PG_ARGISNULL(argno_cand))
+	{
+		int			nc;
+
+		r->flt.cand = array_key_indices(fcinfo, argno_cand, v, false, &nc);
+		r->flt.n_cand = nc;
+	}
+	r->skip = palloc(n);
+	r->flt.skip = r->skip;
+	r->scores = palloc_extended(sizeof(float) * n, MCXT_ALLOC_HUGE);
+	r->ridx = palloc(sizeof(int32) * r->window);
+	r->rw = palloc(sizeof(float) * r->window);
+	r->heap = palloc(sizeof(AffScored) * Max(k, 1));
+}
+
+/*
+ * Rank the next items after the recent items idx[0 .. n) (-1: unknown)
+ * into t: only items that follow one of them score above zero, and only
+ * those are ranked.  who names the request in an error.
+ */
+static void
+rank_next(NextRanking *r, const int32 *idx, const bool *is_null, int n, AffTopK *t,
+		  const char *who)
+{
+	const AffMethod *meth = model_method(r->v);
+	int64		n_items = r->v->h->n_items;
+	AffError	err;
+	int			m;
+	int64		j;
+	int64		bad;
+
+	m = recent_weights(idx, is_null, n, r->window, r->ridx, r->rw);
+	aff_topk_init(t, r->heap, r->k);
+	if (m == 0)
+		return;
+	if (meth->basket_scores(&r->s, r->ridx, r->rw, m, r->scores, &err) != AFF_OK)
+		raise_engine_error(&err);
+	for (j = 0; j < n_items; j++)
+		r->skip[j] = r->excluded[j] || r->scores[j] == 0;
+	bad = aff_topk_scores(r->scores, n_items, &r->flt, t);
+	check_finite_scores(r->v, false, bad, who);
+}
+
+/* The indices of a key array's elements in order (-1 unknown), with its NULLs. */
+static int32 *
+ordered_indices(FunctionCallInfo fcinfo, int argno, const AffModelView *v, bool **nulls_out,
+				Datum **elems_out, int *n_out, const char *what)
+{
+	ArrayType  *arr = PG_GETARG_ARRAYTYPE_P(argno);
+	bool		text_call = require_array_keys(fcinfo, argno, v, false);
+	Datum	   *elems;
+	bool	   *nulls;
+	int			n;
+	int32	   *idx;
+	int			i;
+
+	if (ARR_NDIM(arr) > 1)
+		ereport(ERROR,
+				(errcode(ERRCODE_ARRAY_SUBSCRIPT_ERROR),
+				 errmsg("%s must be a one-dimensional array", what),
+				 errdetail("The array has %d dimensions.", ARR_NDIM(arr))));
+	if (text_call)
+		deconstruct_array(arr, TEXTOID, -1, false, TYPALIGN_INT, &elems, &nulls, &n);
+	else
+		deconstruct_array(arr, INT8OID, 8, true, TYPALIGN_DOUBLE, &elems, &nulls, &n);
+	idx = palloc(sizeof(int32) * (n + 1));
+	for (i = 0; i < n; i++)
+		idx[i] = nulls[i] ? -1 : (int32) key_elem_index(v, false, elems[i], text_call);
+	*nulls_out = nulls;
+	if (elems_out)
+		*elems_out = elems;
+	*n_out = n;
+	return idx;
+}
+
+PG_FUNCTION_INFO_V1(affinity_next_items);
+
+/*
+ * next_items(model, recent, k, exclude, candidates) -> (item_id, score,
+ * rank): the items most likely to come next after the recent items of one
+ * session, in order (last = most recent).
+ */
+Datum
+affinity_next_items(PG_FUNCTION_ARGS)
+{
+	CachedModel *e;
+	NextRanking r;
+	AffTopK		t;
+	int32	   *idx;
+	bool	   *nulls;
+	int			n;
+	int64		k;
+
+	materialize(fcinfo);
+	if (PG_ARGISNULL(0) || PG_ARGISNULL(1))
+		return (Datum) 0;
+	e = rules_model(fcinfo, "next_items");
+	check_output_keys(fcinfo, &e->view, 0, false);
+	k = get_k(fcinfo, 2, e->view.h->n_items);
+	idx = ordered_indices(fcinfo, 1, &e->view, &nulls, NULL, &n, "the recent items");
+	if (k == 0)
+		return (Datum) 0;
+	ranking_init(fcinfo, &r, e, k, 3, 4);
+	rank_next(&r, idx, nulls, n, &t, "the recent items");
+	emit_topk(fcinfo, &t, &e->view, false, NULL);
+	return (Datum) 0;
+}
+
+/* Session ordinal and event position, for grouping a batch's events. */
+typedef struct SessionEvent
+{
+	Datum		key;
+	int			pos;
+} SessionEvent;
+
+static bool sort_text_keys;
+
+/* Session keys in order: int64, or text bytes (then length). */
+static int
+cmp_session_keys(Datum a, Datum b)
+{
+	if (sort_text_keys)
+	{
+		text	   *tx = DatumGetTextPP(a);
+		text	   *ty = DatumGetTextPP(b);
+		int			lx = VARSIZE_ANY_EXHDR(tx);
+		int			ly = VARSIZE_ANY_EXHDR(ty);
+		int			c = memcmp(VARDATA_ANY(tx), VARDATA_ANY(ty), Min(lx, ly));
+
+		return c != 0 ? c : (lx < ly ? -1 : lx > ly);
+	}
+	return DatumGetInt64(a) < DatumGetInt64(b) ? -1 : DatumGetInt64(a) > DatumGetInt64(b);
+}
+
+static int
+cmp_session_event(const void *a, const void *b)
+{
+	const SessionEvent *x = a;
+	const SessionEvent *y = b;
+	int			c = cmp_session_keys(x->key, y->key);
+
+	if (c != 0)
+		return c;
+	return x->pos < y->pos ? -1 : x->pos > y->pos;
+}
+
+PG_FUNCTION_INFO_V1(affinity_next_items_for_all);
+
+/*
+ * next_items_for_all(model, session_ids, item_ids, k, exclude, candidates)
+ * -> (session_id, item_id, score, rank): element i of the two arrays is one
+ * event (session, item); each session's events are its elements in array
+ * order.  Sessions come out in key order (text: byte order).
+ */
+Datum
+affinity_next_items_for_all(PG_FUNCTION_ARGS)
+{
+	CachedModel *e;
+	ArrayType  *sa;
+	NextRanking r;
+	Datum	   *skeys;
+	bool	   *snulls;
+	int			ns;
+	int32	   *idx;
+	bool	   *inulls;
+	int			ni;
+	SessionEvent *se;
+	int32	   *gidx;
+	bool	   *gnull;
+	int			m = 0;
+	int			i;
+	int			g;
+	int64		k;
+	bool		text_sessions;
+
+	materialize(fcinfo);
+	if (PG_ARGISNULL(0) || PG_ARGISNULL(1) || PG_ARGISNULL(2))
+		return (Datum) 0;
+	e = rules_model(fcinfo, "next_items_for_all");
+	check_output_keys(fcinfo, &e->view, 1, false);
+	k = get_k(fcinfo, 3, e->view.h->n_items);
+	sa = PG_GETARG_ARRAYTYPE_P(1);
+	text_sessions = ARR_ELEMTYPE(sa) == TEXTOID;
+	if (ARR_NDIM(sa) > 1)
+		ereport(ERROR,
+				(errcode(ERRCODE_ARRAY_SUBSCRIPT_ERROR),
+				 errmsg("the session ids must be a one-dimensional array"),
+				 errdetail("The array has %d dimensions.", ARR_NDIM(sa))));
+	if (text_sessions)
+		deconstruct_array(sa, TEXTOID, -1, false, TYPALIGN_INT, &skeys, &snulls, &ns);
+	else
+		deconstruct_array(sa, INT8OID, 8, true, TYPALIGN_DOUBLE, &skeys, &snulls, &ns);
+	idx = ordered_indices(fcinfo, 2, &e->view, &inulls, NULL, &ni, "the item ids");
+	if (ns != ni)
+		ereport(ERROR,
+				(errcode(ERRCODE_ARRAY_SUBSCRIPT_ERROR),
+				 errmsg("the session ids and the item ids must have the same length"),
+				 errdetail("There are %d session ids and %d item ids.", ns, ni),
+				 errhint("Element i of both arrays is one event: aggregate both with the same ORDER BY.")));
+	if (k == 0 || ns == 0)
+		return (Datum) 0;
+	se = palloc(sizeof(SessionEvent) * ns);
+	for (i = 0; i < ns; i++)
+		if (!snulls[i])
+		{
+			se[m].key = skeys[i];
+			se[m++].pos = i;
+		}
+	sort_text_keys = text_sessions;
+	qsort(se, m, sizeof(SessionEvent), cmp_session_event);
+	ranking_init(fcinfo, &r, e, k, 4, 5);
+	gidx = palloc(sizeof(int32) * (m + 1));
+	gnull = palloc(sizeof(bool) * (m + 1));
+	for (g = 0; g < m;)
+	{
+		int			end = g;
+		int			n = 0;
+		AffTopK		t;
+		int64		got;
+		int64		rk;
+
+		CHECK_FOR_INTERRUPTS();
+		sort_text_keys = text_sessions;
+		while (end < m && cmp_session_keys(se[g].key, se[end].key) == 0)
+		{
+			gidx[n] = idx[se[end].pos];
+			gnull[n++] = inulls[se[end].pos];
+			end++;
+		}
+		rank_next(&r, gidx, gnull, n, &t, "a session");
+		got = aff_topk_finish(&t);
+		for (rk = 0; rk < got; rk++)
+		{
+			Datum		values[4];
+
+			values[0] = se[g].key;
+			values[1] = key_datum(&e->view, false, t.heap[rk].index);
+			values[2] = Float4GetDatum(t.heap[rk].score);
+			values[3] = Int32GetDatum((int32) (rk + 1));
+			put_row(fcinfo, values);
+		}
+		g = end;
+	}
+	return (Datum) 0;
+}
