@@ -615,43 +615,50 @@ CREATE AGGREGATE affinity.fit_sequences(sequence_id text, item_id text, ordered_
 COMMENT ON AGGREGATE affinity.fit_sequences(text, text, timestamptz, jsonb) IS 'sequential rules over ordered events (text sequences, text items, timestamptz positions); options as jsonb (window, successors)';
 
 -- next_items: the next items of one session from its recent items in order
--- (last = most recent); bigint or text items, as the model's.
+-- (last = most recent), or ordered by positions when given (equal
+-- positions are one step, as in the fit); bigint or text items, as the
+-- model's.
 CREATE FUNCTION affinity.next_items(model affinity.model, recent bigint[], k integer DEFAULT 10,
-		exclude bigint[] DEFAULT NULL, candidates bigint[] DEFAULT NULL)
+		exclude bigint[] DEFAULT NULL, candidates bigint[] DEFAULT NULL, positions bigint[] DEFAULT NULL)
 	RETURNS TABLE (item_id bigint, score real, rank integer)
 	AS 'MODULE_PATHNAME', 'affinity_next_items' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 10;
-COMMENT ON FUNCTION affinity.next_items(affinity.model, bigint[], integer, bigint[], bigint[]) IS 'the k items most likely to come next after a session''s recent items, by sequential rules';
+COMMENT ON FUNCTION affinity.next_items(affinity.model, bigint[], integer, bigint[], bigint[], bigint[]) IS 'the k items most likely to come next after a session''s recent items, by sequential rules';
 CREATE FUNCTION affinity.next_items(model affinity.model, recent text[], k integer DEFAULT 10,
-		exclude text[] DEFAULT NULL, candidates text[] DEFAULT NULL)
+		exclude text[] DEFAULT NULL, candidates text[] DEFAULT NULL, positions bigint[] DEFAULT NULL)
 	RETURNS TABLE (item_id text, score real, rank integer)
 	AS 'MODULE_PATHNAME', 'affinity_next_items' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 1000 ROWS 10;
-COMMENT ON FUNCTION affinity.next_items(affinity.model, text[], integer, text[], text[]) IS 'the k items most likely to come next after a session''s recent items, by sequential rules (text keys)';
+COMMENT ON FUNCTION affinity.next_items(affinity.model, text[], integer, text[], text[], bigint[]) IS 'the k items most likely to come next after a session''s recent items, by sequential rules (text keys)';
 
 -- next_items_for_all: many sessions in one call, their events as two
--- arrays of one length (element i: session, item), in order.
+-- arrays of one length (element i: session, item), in order or by the
+-- positions of a third array.
 CREATE FUNCTION affinity.next_items_for_all(model affinity.model, session_ids bigint[], item_ids bigint[],
-		k integer DEFAULT 10, exclude bigint[] DEFAULT NULL, candidates bigint[] DEFAULT NULL)
+		k integer DEFAULT 10, exclude bigint[] DEFAULT NULL, candidates bigint[] DEFAULT NULL,
+		positions bigint[] DEFAULT NULL)
 	RETURNS TABLE (session_id bigint, item_id bigint, score real, rank integer)
 	AS 'MODULE_PATHNAME', 'affinity_next_items_for_all' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 100000 ROWS 10000;
-COMMENT ON FUNCTION affinity.next_items_for_all(affinity.model, bigint[], bigint[], integer, bigint[], bigint[]) IS 'the k next items of each session, from the sessions'' events as (session, item) arrays in order';
+COMMENT ON FUNCTION affinity.next_items_for_all(affinity.model, bigint[], bigint[], integer, bigint[], bigint[], bigint[]) IS 'the k next items of each session, from the sessions'' events as (session, item) arrays in order';
 CREATE FUNCTION affinity.next_items_for_all(model affinity.model, session_ids bigint[], item_ids text[],
-		k integer DEFAULT 10, exclude text[] DEFAULT NULL, candidates text[] DEFAULT NULL)
+		k integer DEFAULT 10, exclude text[] DEFAULT NULL, candidates text[] DEFAULT NULL,
+		positions bigint[] DEFAULT NULL)
 	RETURNS TABLE (session_id bigint, item_id text, score real, rank integer)
 	AS 'MODULE_PATHNAME', 'affinity_next_items_for_all' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 100000 ROWS 10000;
-COMMENT ON FUNCTION affinity.next_items_for_all(affinity.model, bigint[], text[], integer, text[], text[]) IS 'the k next items of each session, from the sessions'' events as (session, item) arrays in order';
+COMMENT ON FUNCTION affinity.next_items_for_all(affinity.model, bigint[], text[], integer, text[], text[], bigint[]) IS 'the k next items of each session, from the sessions'' events as (session, item) arrays in order';
 CREATE FUNCTION affinity.next_items_for_all(model affinity.model, session_ids text[], item_ids bigint[],
-		k integer DEFAULT 10, exclude bigint[] DEFAULT NULL, candidates bigint[] DEFAULT NULL)
+		k integer DEFAULT 10, exclude bigint[] DEFAULT NULL, candidates bigint[] DEFAULT NULL,
+		positions bigint[] DEFAULT NULL)
 	RETURNS TABLE (session_id text, item_id bigint, score real, rank integer)
 	AS 'MODULE_PATHNAME', 'affinity_next_items_for_all' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 100000 ROWS 10000;
-COMMENT ON FUNCTION affinity.next_items_for_all(affinity.model, text[], bigint[], integer, bigint[], bigint[]) IS 'the k next items of each session, from the sessions'' events as (session, item) arrays in order';
+COMMENT ON FUNCTION affinity.next_items_for_all(affinity.model, text[], bigint[], integer, bigint[], bigint[], bigint[]) IS 'the k next items of each session, from the sessions'' events as (session, item) arrays in order';
 CREATE FUNCTION affinity.next_items_for_all(model affinity.model, session_ids text[], item_ids text[],
-		k integer DEFAULT 10, exclude text[] DEFAULT NULL, candidates text[] DEFAULT NULL)
+		k integer DEFAULT 10, exclude text[] DEFAULT NULL, candidates text[] DEFAULT NULL,
+		positions bigint[] DEFAULT NULL)
 	RETURNS TABLE (session_id text, item_id text, score real, rank integer)
 	AS 'MODULE_PATHNAME', 'affinity_next_items_for_all' LANGUAGE C IMMUTABLE PARALLEL SAFE
 	COST 100000 ROWS 10000;
-COMMENT ON FUNCTION affinity.next_items_for_all(affinity.model, text[], text[], integer, text[], text[]) IS 'the k next items of each session, from the sessions'' events as (session, item) arrays in order';
+COMMENT ON FUNCTION affinity.next_items_for_all(affinity.model, text[], text[], integer, text[], text[], bigint[]) IS 'the k next items of each session, from the sessions'' events as (session, item) arrays in order';

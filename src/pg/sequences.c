@@ -371,8 +371,12 @@ build_value(SeqState *st)
 	engine_check(rc, &err);
 
 	parts.h.key_type = st->text_items ? AFF_KEYS_TEXT : AFF_KEYS_BIGINT;
-	parts.h.text_hash_key[0] = st->hash_key[0];
-	parts.h.text_hash_key[1] = st->hash_key[1];
+	/* the sequence texts are not kept: only text items need the key */
+	if (st->text_items)
+	{
+		parts.h.text_hash_key[0] = st->hash_key[0];
+		parts.h.text_hash_key[1] = st->hash_key[1];
+	}
 	parts.h.rows_read = st->rows_read;
 	parts.h.rows_skipped_null = st->rows_null;
 	parts.h.duplicates_summed = out.repeats_merged;
@@ -474,16 +478,36 @@ rules_model(FunctionCallInfo fcinfo, const char *fn)
 	return e;
 }
 
+/* A recent event: its item index (-1 unknown), position and place in the array. */
+typedef struct RecentEvent
+{
+	int32		idx;
+	int64		pos;
+	int			at;
+} RecentEvent;
+
+static int
+cmp_recent(const void *a, const void *b)
+{
+	const RecentEvent *x = a;
+	const RecentEvent *y = b;
+
+	if (x->pos != y->pos)
+		return x->pos < y->pos ? -1 : 1;
+	return x->at < y->at ? -1 : x->at > y->at;
+}
+
 /*
- * The recent items of a session as the rule scores them: elems[0 .. n) in
- * order (idx -1 for an unknown or NULL element), the last counting fully
- * and the one j steps back 1 / j, up to the window (an unknown item still
- * takes its step; a NULL element takes none).  Fills out_idx (ascending,
- * without repeats) and out_w (weights summed for a recurring item);
- * returns their count.
+ * The recent items of a session as the rule scores them: ev[0 .. n) (NULL
+ * elements left out already), in array order, or by position when
+ * with_pos (equal positions are one step, as in the fit).  The last step
+ * counts fully and the one j steps back 1 / j, up to the window; an
+ * unknown item still takes its step.  Fills out_idx (ascending, without
+ * repeats) and out_w (weights summed for a recurring item); returns their
+ * count.
  */
 static int
-recent_weights(const int32 *idx, const bool *is_null, int n, int window, int32 *out_idx,
+recent_weights(RecentEvent *ev, int n, bool with_pos, int window, int32 *out_idx,
 			   float *out_w)
 {
 	int			m = 0;
@@ -491,23 +515,26 @@ recent_weights(const int32 *idx, const bool *is_null, int n, int window, int32 *
 	int			i;
 	int			a;
 
-	for (i = n - 1; i >= 0 && j < window; i--)
+	if (with_pos)
+		qsort(ev, n, sizeof(RecentEvent), cmp_recent);
+	for (i = n - 1; i >= 0; i--)
 	{
-		if (is_null[i])
+		if (i == n - 1 || !with_pos || ev[i].pos != ev[i + 1].pos)
+			j++;
+		if (j > window)
+			break;
+		if (ev[i].idx < 0)
 			continue;
-		j++;
-		if (idx[i] < 0)
-			continue;
-		for (a = 0; a < m && out_idx[a] != idx[i]; a++)
+		for (a = 0; a < m && out_idx[a] != ev[i].idx; a++)
 			;
 		if (a == m)
 		{
-			out_idx[m] = idx[i];
+			out_idx[m] = ev[i].idx;
 			out_w[m++] = 0;
 		}
 		out_w[a] += 1.0f / (float) j;
 	}
-	/* ascending indices, weights alongside (m is at most the window) */
+	/* ascending indices, weights alongside (m is at most n) */
 	for (i = 1; i < m; i++)
 		for (a = i; a > 0 && out_idx[a] < out_idx[a - 1]; a--)
 		{
@@ -534,8 +561,9 @@ typedef struct NextRanking
 	AffItemFilter flt;			/* its skip is rebuilt per session */
 	uint8	   *skip;
 	float	   *scores;
-	int32	   *ridx;
+	int32	   *ridx;			/* the recent items' indices and weights */
 	float	   *rw;
+	int			cap;			/* room in ridx and rw */
 	AffScored  *heap;
 } NextRanking;
 
@@ -571,19 +599,16 @@ ranking_init(FunctionCallInfo fcinfo, NextRanking *r, CachedModel *e, int64 k,
 	r->skip = palloc(n);
 	r->flt.skip = r->skip;
 	r->scores = palloc_extended(sizeof(float) * n, MCXT_ALLOC_HUGE);
-	r->ridx = palloc(sizeof(int32) * r->window);
-	r->rw = palloc(sizeof(float) * r->window);
 	r->heap = palloc(sizeof(AffScored) * Max(k, 1));
 }
 
 /*
- * Rank the next items after the recent items idx[0 .. n) (-1: unknown)
- * into t: only items that follow one of them score above zero, and only
- * those are ranked.  who names the request in an error.
+ * Rank the next items after the recent events ev[0 .. n) into t (see
+ * recent_weights): only items that follow one of them score above zero,
+ * and only those are ranked.  who names the request in an error.
  */
 static void
-rank_next(NextRanking *r, const int32 *idx, const bool *is_null, int n, AffTopK *t,
-		  const char *who)
+rank_next(NextRanking *r, RecentEvent *ev, int n, bool with_pos, AffTopK *t, const char *who)
 {
 	const AffMethod *meth = model_method(r->v);
 	int64		n_items = r->v->h->n_items;
@@ -592,7 +617,15 @@ rank_next(NextRanking *r, const int32 *idx, const bool *is_null, int n, AffTopK 
 	int64		j;
 	int64		bad;
 
-	m = recent_weights(idx, is_null, n, r->window, r->ridx, r->rw);
+	if (n > r->cap)
+	{
+		r->cap = Max(n, 2 * r->cap);
+		r->ridx = r->ridx ? repalloc(r->ridx, sizeof(int32) * r->cap) :
+			palloc(sizeof(int32) * r->cap);
+		r->rw = r->rw ? repalloc(r->rw, sizeof(float) * r->cap) :
+			palloc(sizeof(float) * r->cap);
+	}
+	m = recent_weights(ev, n, with_pos, r->window, r->ridx, r->rw);
 	aff_topk_init(t, r->heap, r->k);
 	if (m == 0)
 		return;
@@ -604,17 +637,24 @@ rank_next(NextRanking *r, const int32 *idx, const bool *is_null, int n, AffTopK 
 	check_finite_scores(r->v, false, bad, who);
 }
 
-/* The indices of a key array's elements in order (-1 unknown), with its NULLs. */
-static int32 *
-ordered_indices(FunctionCallInfo fcinfo, int argno, const AffModelView *v, bool **nulls_out,
-				Datum **elems_out, int *n_out, const char *what)
+/*
+ * The events of the key array argument argno (one-dimensional) with the
+ * positions of argument argno_pos (bigint[] of the same length, or NULL):
+ * ev[i] for element i, its item index (-1 unknown, -2 NULL element).
+ */
+static RecentEvent *
+array_events(FunctionCallInfo fcinfo, int argno, int argno_pos, const AffModelView *v,
+			 int *n_out, bool *with_pos, const char *what)
 {
 	ArrayType  *arr = PG_GETARG_ARRAYTYPE_P(argno);
 	bool		text_call = require_array_keys(fcinfo, argno, v, false);
 	Datum	   *elems;
 	bool	   *nulls;
+	Datum	   *pe = NULL;
+	bool	   *pn = NULL;
+	int			np = 0;
 	int			n;
-	int32	   *idx;
+	RecentEvent *ev;
 	int			i;
 
 	if (ARR_NDIM(arr) > 1)
@@ -626,22 +666,59 @@ ordered_indices(FunctionCallInfo fcinfo, int argno, const AffModelView *v, bool 
 		deconstruct_array(arr, TEXTOID, -1, false, TYPALIGN_INT, &elems, &nulls, &n);
 	else
 		deconstruct_array(arr, INT8OID, 8, true, TYPALIGN_DOUBLE, &elems, &nulls, &n);
-	idx = palloc(sizeof(int32) * (n + 1));
+	*with_pos = argno_pos < PG_NARGS() && !PG_ARGISNULL(argno_pos);
+	if (*with_pos)
+	{
+		deconstruct_array(PG_GETARG_ARRAYTYPE_P(argno_pos), INT8OID, 8, true, TYPALIGN_DOUBLE,
+						  &pe, &pn, &np);
+		if (np != n)
+			ereport(ERROR,
+					(errcode(ERRCODE_ARRAY_SUBSCRIPT_ERROR),
+					 errmsg("the positions must be as many as %s", what),
+					 errdetail("There are %d items and %d positions.", n, np),
+					 errhint("Give one position per item, or NULL for the array order.")));
+	}
+	ev = palloc(sizeof(RecentEvent) * (n + 1));
 	for (i = 0; i < n; i++)
-		idx[i] = nulls[i] ? -1 : (int32) key_elem_index(v, false, elems[i], text_call);
-	*nulls_out = nulls;
-	if (elems_out)
-		*elems_out = elems;
+	{
+		ev[i].idx = nulls[i] ? -2 : (int32) key_elem_index(v, false, elems[i], text_call);
+		ev[i].at = i;
+		ev[i].pos = 0;
+		if (*with_pos)
+		{
+			if (pn[i] && !nulls[i])
+				ereport(ERROR,
+						(errcode(ERRCODE_NULL_VALUE_NOT_ALLOWED),
+						 errmsg("a position of %s is NULL", what),
+						 errdetail("Position %d of %d is NULL.", i + 1, n),
+						 errhint("Give every item a position, or pass NULL positions for the array order.")));
+			ev[i].pos = pn[i] ? 0 : DatumGetInt64(pe[i]);
+		}
+	}
 	*n_out = n;
-	return idx;
+	return ev;
+}
+
+/* Leave out the NULL elements of ev[0 .. n); returns the count left. */
+static int
+drop_null_events(RecentEvent *ev, int n)
+{
+	int			m = 0;
+	int			i;
+
+	for (i = 0; i < n; i++)
+		if (ev[i].idx != -2)
+			ev[m++] = ev[i];
+	return m;
 }
 
 PG_FUNCTION_INFO_V1(affinity_next_items);
 
 /*
- * next_items(model, recent, k, exclude, candidates) -> (item_id, score,
- * rank): the items most likely to come next after the recent items of one
- * session, in order (last = most recent).
+ * next_items(model, recent, k, exclude, candidates, positions) ->
+ * (item_id, score, rank): the items most likely to come next after the
+ * recent items of one session, in order (last = most recent), or ordered
+ * by positions when given (equal positions: one step, a basket).
  */
 Datum
 affinity_next_items(PG_FUNCTION_ARGS)
@@ -649,8 +726,8 @@ affinity_next_items(PG_FUNCTION_ARGS)
 	CachedModel *e;
 	NextRanking r;
 	AffTopK		t;
-	int32	   *idx;
-	bool	   *nulls;
+	RecentEvent *ev;
+	bool		with_pos;
 	int			n;
 	int64		k;
 
@@ -660,20 +737,21 @@ affinity_next_items(PG_FUNCTION_ARGS)
 	e = rules_model(fcinfo, "next_items");
 	check_output_keys(fcinfo, &e->view, 0, false);
 	k = get_k(fcinfo, 2, e->view.h->n_items);
-	idx = ordered_indices(fcinfo, 1, &e->view, &nulls, NULL, &n, "the recent items");
+	ev = array_events(fcinfo, 1, 5, &e->view, &n, &with_pos, "the recent items");
 	if (k == 0)
 		return (Datum) 0;
+	n = drop_null_events(ev, n);
 	ranking_init(fcinfo, &r, e, k, 3, 4);
-	rank_next(&r, idx, nulls, n, &t, "the recent items");
+	rank_next(&r, ev, n, with_pos, &t, "the recent items");
 	emit_topk(fcinfo, &t, &e->view, false, NULL);
 	return (Datum) 0;
 }
 
-/* Session ordinal and event position, for grouping a batch's events. */
+/* A batch event: its session key and its place in the arrays. */
 typedef struct SessionEvent
 {
 	Datum		key;
-	int			pos;
+	int			at;
 } SessionEvent;
 
 static bool sort_text_keys;
@@ -704,16 +782,37 @@ cmp_session_event(const void *a, const void *b)
 
 	if (c != 0)
 		return c;
-	return x->pos < y->pos ? -1 : x->pos > y->pos;
+	return x->at < y->at ? -1 : x->at > y->at;
+}
+
+/* Emit the ranked rows of one session of the batch. */
+static void
+emit_session(FunctionCallInfo fcinfo, const AffModelView *v, Datum session, AffTopK *t)
+{
+	int64		got = aff_topk_finish(t);
+	int64		rk;
+
+	for (rk = 0; rk < got; rk++)
+	{
+		Datum		values[4];
+
+		values[0] = session;
+		values[1] = key_datum(v, false, t->heap[rk].index);
+		values[2] = Float4GetDatum(t->heap[rk].score);
+		values[3] = Int32GetDatum((int32) (rk + 1));
+		put_row(fcinfo, values);
+	}
 }
 
 PG_FUNCTION_INFO_V1(affinity_next_items_for_all);
 
 /*
- * next_items_for_all(model, session_ids, item_ids, k, exclude, candidates)
- * -> (session_id, item_id, score, rank): element i of the two arrays is one
- * event (session, item); each session's events are its elements in array
- * order.  Sessions come out in key order (text: byte order).
+ * next_items_for_all(model, session_ids, item_ids, k, exclude, candidates,
+ * positions) -> (session_id, item_id, score, rank): element i of the
+ * arrays is one event (session, item [, position]); each session's events
+ * are its elements in array order, or by position when given.  Events with
+ * a NULL session or item are left out.  Sessions come out in key order
+ * (text: byte order).
  */
 Datum
 affinity_next_items_for_all(PG_FUNCTION_ARGS)
@@ -724,12 +823,11 @@ affinity_next_items_for_all(PG_FUNCTION_ARGS)
 	Datum	   *skeys;
 	bool	   *snulls;
 	int			ns;
-	int32	   *idx;
-	bool	   *inulls;
+	RecentEvent *ev;
+	RecentEvent *group;
+	bool		with_pos;
 	int			ni;
 	SessionEvent *se;
-	int32	   *gidx;
-	bool	   *gnull;
 	int			m = 0;
 	int			i;
 	int			g;
@@ -753,7 +851,7 @@ affinity_next_items_for_all(PG_FUNCTION_ARGS)
 		deconstruct_array(sa, TEXTOID, -1, false, TYPALIGN_INT, &skeys, &snulls, &ns);
 	else
 		deconstruct_array(sa, INT8OID, 8, true, TYPALIGN_DOUBLE, &skeys, &snulls, &ns);
-	idx = ordered_indices(fcinfo, 2, &e->view, &inulls, NULL, &ni, "the item ids");
+	ev = array_events(fcinfo, 2, 6, &e->view, &ni, &with_pos, "the item ids");
 	if (ns != ni)
 		ereport(ERROR,
 				(errcode(ERRCODE_ARRAY_SUBSCRIPT_ERROR),
@@ -764,44 +862,27 @@ affinity_next_items_for_all(PG_FUNCTION_ARGS)
 		return (Datum) 0;
 	se = palloc(sizeof(SessionEvent) * ns);
 	for (i = 0; i < ns; i++)
-		if (!snulls[i])
+		if (!snulls[i] && ev[i].idx != -2)
 		{
 			se[m].key = skeys[i];
-			se[m++].pos = i;
+			se[m++].at = i;
 		}
 	sort_text_keys = text_sessions;
 	qsort(se, m, sizeof(SessionEvent), cmp_session_event);
 	ranking_init(fcinfo, &r, e, k, 4, 5);
-	gidx = palloc(sizeof(int32) * (m + 1));
-	gnull = palloc(sizeof(bool) * (m + 1));
+	group = palloc(sizeof(RecentEvent) * (m + 1));
 	for (g = 0; g < m;)
 	{
 		int			end = g;
 		int			n = 0;
 		AffTopK		t;
-		int64		got;
-		int64		rk;
 
 		CHECK_FOR_INTERRUPTS();
 		sort_text_keys = text_sessions;
 		while (end < m && cmp_session_keys(se[g].key, se[end].key) == 0)
-		{
-			gidx[n] = idx[se[end].pos];
-			gnull[n++] = inulls[se[end].pos];
-			end++;
-		}
-		rank_next(&r, gidx, gnull, n, &t, "a session");
-		got = aff_topk_finish(&t);
-		for (rk = 0; rk < got; rk++)
-		{
-			Datum		values[4];
-
-			values[0] = se[g].key;
-			values[1] = key_datum(&e->view, false, t.heap[rk].index);
-			values[2] = Float4GetDatum(t.heap[rk].score);
-			values[3] = Int32GetDatum((int32) (rk + 1));
-			put_row(fcinfo, values);
-		}
+			group[n++] = ev[se[end++].at];
+		rank_next(&r, group, n, with_pos, &t, "a session");
+		emit_session(fcinfo, &e->view, se[g].key, &t);
 		g = end;
 	}
 	return (Datum) 0;
