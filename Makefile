@@ -43,7 +43,7 @@ EXTVERSION = 1.3
 DATA = src/affinity--1.0.sql src/affinity--1.0--1.1.sql src/affinity--1.1--1.2.sql src/affinity--1.2--1.3.sql
 PGFILEDESC = "affinity - recommendation models in SQL"
 
-REGRESS = type fit serving batch metrics methods registry text_keys mixed_keys corrupt privileges errors upgrade profiles
+REGRESS = type fit serving batch metrics methods registry text_keys mixed_keys corrupt privileges errors upgrade profiles sequences
 ISOLATION = refresh_race
 REGRESS_OPTS = --inputdir=. --outputdir=. --load-extension=affinity
 

@@ -358,6 +358,15 @@ aff_sequences_build(AffEvent *ev, int64_t n, const AffSeqParams *p, const AffAll
 	}
 	ptr[n_items] = kept;
 	info[AFF_SINFO_KEPT] = kept;
+	if (kept == 0)
+	{
+		aff_fail(err, AFF_ERR_INVALID, "affinity.fit_sequences found no transition");
+		aff_detail(err, "Of %lld sequences, %lld have one step only (every event at one position), "
+				   "and no item is followed by another within %d steps in the others.",
+				   (long long) info[AFF_SINFO_SEQUENCES], (long long) info[AFF_SINFO_ONE_STEP],
+				   p->window);
+		return aff_hint(err, "Check that the position orders the events of a sequence (a timestamp or a line number) and that the sequence key groups them.");
+	}
 	if (ridx == NULL && (st = reserve_rules(a, &ridx, &rw, &cap, 0, 1, err)) != AFF_OK)
 		return st;
 	aff_release(a, occ);
