@@ -109,11 +109,13 @@ cmp_rule(const void *a, const void *b)
 }
 
 double
-aff_sequences_build_bytes(int64_t n, int successors)
+aff_sequences_build_bytes(int64_t n)
 {
-	/* occurrence lists and keys (12 n), the accumulator and the kept rules */
-	return (double) n * 12.0 + (double) n * 8.0 +
-		(double) n * (double) (successors < 64 ? successors : 64) * 8.0;
+	/*
+	 * item keys (8 n), occurrences (4 n), and per item at most: offsets
+	 * twice, accumulator, gathered rules, popularity (36 per item, items <= n)
+	 */
+	return (double) n * (12.0 + 36.0);
 }
 
 /*
@@ -202,19 +204,33 @@ number_events(AffEvent *ev, int64_t *n_io, const AffSeqParams *p, const AffAlloc
 	return AFF_OK;
 }
 
-/* Room for want more kept rules in the growing output arrays. */
+/*
+ * Room for want more kept rules in the growing output arrays; the memory
+ * the build would then hold (the old and the new arrays during the copy)
+ * is checked against the limit first.
+ */
 static AffStatus
-reserve_rules(const AffAllocator *a, int32_t **idx, float **w, int64_t *cap, int64_t used,
-			  int64_t want, AffError *err)
+reserve_rules(const AffSeqParams *p, double base, const AffAllocator *a, int32_t **idx,
+			  float **w, int64_t *cap, int64_t used, int64_t want, AffError *err)
 {
 	int64_t		c = *cap;
 	int32_t    *ni;
 	float	   *nw;
+	double		need;
 
 	if (used + want <= c)
 		return AFF_OK;
 	while (c < used + want)
 		c = c < 1024 ? 1024 : c * 2;
+	need = p->held_bytes + base + 8.0 * ((double) c + (double) *cap);
+	if (p->memory_limit > 0 && need > p->memory_limit)
+	{
+		aff_fail(err, AFF_ERR_LIMIT, "the sequential rules would need about %.0f MB, over the memory limit",
+				 need / (1024.0 * 1024.0));
+		aff_detail(err, "%lld rules are kept so far, with up to %d per item; the limit is %.0f MB.",
+				   (long long) used, p->successors, p->memory_limit / (1024.0 * 1024.0));
+		return aff_hint(err, "Lower \"successors\" or \"window\", or raise affinity.max_fit_memory.");
+	}
 	ni = aff_alloc_array(a, (size_t) c, sizeof(int32_t));
 	nw = aff_alloc_array(a, (size_t) c, sizeof(float));
 	if (ni == NULL || nw == NULL)
@@ -255,6 +271,7 @@ aff_sequences_build(AffEvent *ev, int64_t n, const AffSeqParams *p, const AffAll
 	int64_t		i;
 	int64_t		it;
 	int64_t		work = 0;
+	double		base;
 	AffStatus	st;
 
 	memset(out, 0, sizeof(*out));
@@ -298,6 +315,7 @@ aff_sequences_build(AffEvent *ev, int64_t n, const AffSeqParams *p, const AffAll
 	}
 	for (it = 0; it < n_items; it++)
 		acc[it] = 0;
+	base = aff_sequences_build_bytes(n);
 
 	/* the rules of each item p: its successors within the window, summed */
 	for (it = 0; it < n_items; it++)
@@ -338,7 +356,7 @@ aff_sequences_build(AffEvent *ev, int64_t n, const AffSeqParams *p, const AffAll
 		info[AFF_SINFO_RULES] += n_rules;
 		qsort(rules, (size_t) n_rules, sizeof(Rule), cmp_rule);
 		take = n_rules < p->successors ? n_rules : p->successors;
-		if ((st = reserve_rules(a, &ridx, &rw, &cap, kept, take, err)) != AFF_OK)
+		if ((st = reserve_rules(p, base, a, &ridx, &rw, &cap, kept, take, err)) != AFF_OK)
 			return st;
 		ptr[it] = kept;
 		for (o = 0; o < take; o++)
@@ -367,7 +385,7 @@ aff_sequences_build(AffEvent *ev, int64_t n, const AffSeqParams *p, const AffAll
 				   p->window);
 		return aff_hint(err, "Check that the position orders the events of a sequence (a timestamp or a line number) and that the sequence key groups them.");
 	}
-	if (ridx == NULL && (st = reserve_rules(a, &ridx, &rw, &cap, 0, 1, err)) != AFF_OK)
+	if (ridx == NULL && (st = reserve_rules(p, base, a, &ridx, &rw, &cap, 0, 1, err)) != AFF_OK)
 		return st;
 	aff_release(a, occ);
 	aff_release(a, occ_ptr);
@@ -504,8 +522,13 @@ rules_check(const AffModelView *v, AffPollFn poll, void *poll_arg, AffError *err
 	{
 		float		pop = v->popularity[i];
 
-		if (pop < 1 || pop != floorf(pop) || pop > (float) info[AFF_SINFO_SEQUENCES])
-			return bad_value(err, "popularity (item index, sequences)", i, (long long) pop);
+		if (!(pop >= 1) || pop != floorf(pop) || pop > (float) info[AFF_SINFO_SEQUENCES])
+		{
+			/* pop may be NaN or beyond any integer: shown as a number */
+			aff_fail(err, AFF_ERR_CORRUPT, "invalid affinity.model value");
+			return aff_detail(err, "The sequential rules' popularity of item index %lld is %g, not a whole number of its %lld sequences.",
+							  (long long) i, (double) pop, (long long) info[AFF_SINFO_SEQUENCES]);
+		}
 		if (v->neighbor_ptr[i + 1] - v->neighbor_ptr[i] > info[AFF_SINFO_SUCCESSORS])
 			return bad_value(err, "successor counts (item index, count)", i,
 							 v->neighbor_ptr[i + 1] - v->neighbor_ptr[i]);

@@ -57,6 +57,8 @@ typedef struct AffSeqParams
 	int			window;
 	int			successors;
 	int			position_type;	/* AFF_POSITION_* */
+	double		memory_limit;	/* bytes the build may hold, 0 = no limit */
+	double		held_bytes;		/* what the caller holds already (the events, texts) */
 	AffPollFn	poll;
 	void	   *poll_arg;
 } AffSeqParams;
@@ -78,8 +80,11 @@ extern AffStatus aff_sequences_build(AffEvent *ev, int64_t n, const AffSeqParams
 									 const AffAllocator *a, AffModelParts *parts,
 									 AffSeqBuild *out, AffError *err);
 
-/* Bytes the build needs besides the events themselves, for n events. */
-extern double aff_sequences_build_bytes(int64_t n, int successors);
+/*
+ * Bytes the build needs besides the events for n events, before the rules
+ * it keeps (which it checks against memory_limit as they grow).
+ */
+extern double aff_sequences_build_bytes(int64_t n);
 
 extern const char *aff_position_name(int code);
 

@@ -85,8 +85,7 @@ state_need(const SeqState *st, int64 cap)
 		texts += (double) text_dict_memory(st->seqs);
 	if (st->items)
 		texts += (double) text_dict_memory(st->items) + 2.0 * st->items->bytes;
-	return (double) cap * sizeof(AffEvent) +
-		aff_sequences_build_bytes(st->n, st->opts_done ? st->opts.successors : 100) + texts;
+	return (double) cap * sizeof(AffEvent) + aff_sequences_build_bytes(st->n) + texts;
 }
 
 /* Refuse to go on past affinity.max_fit_memory. */
@@ -366,6 +365,10 @@ build_value(SeqState *st)
 	p.window = st->opts.window;
 	p.successors = st->opts.successors;
 	p.position_type = st->position_type;
+	p.memory_limit = (double) affinity_max_fit_memory_mb * 1024.0 * 1024.0;
+	p.held_bytes = (double) st->cap * sizeof(AffEvent) +
+		(st->seqs ? (double) text_dict_memory(st->seqs) : 0) +
+		(st->items ? (double) text_dict_memory(st->items) : 0);
 	p.poll = engine_poll;
 	rc = aff_sequences_build(st->ev, st->n, &p, &a, &parts, &out, &err);
 	engine_check(rc, &err);
@@ -507,13 +510,21 @@ cmp_recent(const void *a, const void *b)
  * count.
  */
 static int
-recent_weights(RecentEvent *ev, int n, bool with_pos, int window, int32 *out_idx,
-			   float *out_w)
+cmp_int32_asc(const void *a, const void *b)
+{
+	int32		x = *(const int32 *) a;
+	int32		y = *(const int32 *) b;
+
+	return x < y ? -1 : x > y;
+}
+
+static int
+recent_weights(RecentEvent *ev, int n, bool with_pos, int window, float *wacc,
+			   int32 *out_idx, float *out_w)
 {
 	int			m = 0;
 	int			j = 0;
 	int			i;
-	int			a;
 
 	if (with_pos)
 		qsort(ev, n, sizeof(RecentEvent), cmp_recent);
@@ -525,27 +536,17 @@ recent_weights(RecentEvent *ev, int n, bool with_pos, int window, int32 *out_idx
 			break;
 		if (ev[i].idx < 0)
 			continue;
-		for (a = 0; a < m && out_idx[a] != ev[i].idx; a++)
-			;
-		if (a == m)
-		{
-			out_idx[m] = ev[i].idx;
-			out_w[m++] = 0;
-		}
-		out_w[a] += 1.0f / (float) j;
+		/* wacc (all zero between calls) sums the weights of a recurring item */
+		if (wacc[ev[i].idx] == 0)
+			out_idx[m++] = ev[i].idx;
+		wacc[ev[i].idx] += 1.0f / (float) j;
 	}
-	/* ascending indices, weights alongside (m is at most n) */
-	for (i = 1; i < m; i++)
-		for (a = i; a > 0 && out_idx[a] < out_idx[a - 1]; a--)
-		{
-			int32		ti = out_idx[a];
-			float		tw = out_w[a];
-
-			out_idx[a] = out_idx[a - 1];
-			out_w[a] = out_w[a - 1];
-			out_idx[a - 1] = ti;
-			out_w[a - 1] = tw;
-		}
+	qsort(out_idx, m, sizeof(int32), cmp_int32_asc);
+	for (i = 0; i < m; i++)
+	{
+		out_w[i] = wacc[out_idx[i]];
+		wacc[out_idx[i]] = 0;
+	}
 	return m;
 }
 
@@ -564,6 +565,7 @@ typedef struct NextRanking
 	int32	   *ridx;			/* the recent items' indices and weights */
 	float	   *rw;
 	int			cap;			/* room in ridx and rw */
+	float	   *wacc;			/* n_items, zero between sessions */
 	AffScored  *heap;
 } NextRanking;
 
@@ -597,6 +599,7 @@ ranking_init(FunctionCallInfo fcinfo, NextRanking *r, CachedModel *e, int64 k,
 		r->flt.n_cand = nc;
 	}
 	r->skip = palloc(n);
+	r->wacc = palloc_extended(sizeof(float) * n, MCXT_ALLOC_HUGE | MCXT_ALLOC_ZERO);
 	r->flt.skip = r->skip;
 	r->scores = palloc_extended(sizeof(float) * n, MCXT_ALLOC_HUGE);
 	r->heap = palloc(sizeof(AffScored) * Max(k, 1));
@@ -625,7 +628,7 @@ rank_next(NextRanking *r, RecentEvent *ev, int n, bool with_pos, AffTopK *t, con
 		r->rw = r->rw ? repalloc(r->rw, sizeof(float) * r->cap) :
 			palloc(sizeof(float) * r->cap);
 	}
-	m = recent_weights(ev, n, with_pos, r->window, r->ridx, r->rw);
+	m = recent_weights(ev, n, with_pos, r->window, r->wacc, r->ridx, r->rw);
 	aff_topk_init(t, r->heap, r->k);
 	if (m == 0)
 		return;

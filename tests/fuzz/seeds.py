@@ -72,6 +72,7 @@ SEC = {
     19: ("profile_info", "q"), 20: ("feature_keys", "q"), 21: ("feature_text_off", "q"),
     22: ("feature_text", "B"), 23: ("feature_items", "i"), 24: ("profile_ptr", "q"),
     25: ("profile_features", "i"), 26: ("profile_values", "f"), 27: ("profile_vectors", "f"),
+    28: ("sequence_info", "q"),
 }
 KIND = {name: k for k, (name, _) in SEC.items()}
 METHOD = {"implicit_als": 1, "popularity": 2, "ease": 3, "item_knn": 4}
@@ -650,6 +651,12 @@ FROM generate_series(1, 6) i, generate_series(1, 2) f""", '{"min_document_freque
     ("profiles_vectors", """
 SELECT decode(affinity.item_profiles(i, ARRAY[i, 1 - i, i % 3]::real[], {opts})::text, 'base64')
 FROM generate_series(0, 7) i""", '{"normalization": "none"}'),
+    ("sequences_rules", """
+SELECT decode(affinity.fit_sequences(s, (s * p) % 7, p, {opts})::text, 'base64')
+FROM generate_series(1, 9) s, generate_series(1, 4) p""", '{"window": 2, "successors": 3}'),
+    ("sequences_text", """
+SELECT decode(affinity.fit_sequences('v' || s, 'SKU-' || (s + p) % 5, p / 2, {opts})::text, 'base64')
+FROM generate_series(1, 6) s, generate_series(1, 5) p""", '{"window": 1}'),
     ("popularity_wide", """
 SELECT decode(affinity.fit(u, i, 1, {opts})::text, 'base64')
 FROM generate_series(1, 30) u, generate_series(1, 30) i WHERE (u * i) % 7 = 1""",
