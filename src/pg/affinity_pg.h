@@ -76,7 +76,7 @@ extern bool affinity_verbose;
 typedef AffOptions FitOptions;
 
 extern void fit_options_parse(Jsonb *options, FitOptions *o);
-extern void fit_option_set(FitOptions *o, const char *key, JsonbValue *v);
+extern void fit_option_set(FitOptions *o, const char *key, JsonbValue *v, const char *owner);
 extern int	resolve_threads(int requested);
 
 /* Engine glue (model_io.c) */

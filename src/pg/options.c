@@ -47,6 +47,9 @@ defaults(FitOptions *o)
 	o->successors = 100;
 }
 
+/* Which aggregate's options are being read, for messages. */
+static const char *option_owner = "affinity.fit";
+
 static void
 bad_value(const AffOptionDef *d, const char *shown)
 {
@@ -55,7 +58,7 @@ bad_value(const AffOptionDef *d, const char *shown)
 	aff_option_describe_bounds(d, want, sizeof(want));
 	ereport(ERROR,
 			(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
-			 errmsg("invalid value for affinity.fit option \"%s\"", d->name),
+			 errmsg("invalid value for %s option \"%s\"", option_owner, d->name),
 			 errdetail("The value given is %s.", shown),
 			 errhint("\"%s\" takes %s.", d->name, want)));
 }
@@ -156,12 +159,9 @@ choice_value(const AffOptionDef *d, JsonbValue *v)
 	return -1;					/* not reached */
 }
 
-/*
- * Apply one jsonb key and value through the option table (also used by
- * affinity.fit_sequences, sequences.c).
- */
-void
-fit_option_set(FitOptions *o, const char *key, JsonbValue *v)
+/* Apply one jsonb key and value through the option table. */
+static void
+set_option(FitOptions *o, const char *key, JsonbValue *v)
 {
 	bool		deprecated;
 	const AffOptionDef *d = aff_option_by_name(key, strlen(key), &deprecated);
@@ -248,6 +248,7 @@ check_merged(const FitOptions *o)
 void
 fit_options_parse(Jsonb *options, FitOptions *o)
 {
+	option_owner = "affinity.fit";
 	defaults(o);
 	if (options != NULL)
 	{
@@ -267,7 +268,7 @@ fit_options_parse(Jsonb *options, FitOptions *o)
 			if (tok == WJB_KEY)
 				key = pnstrdup(v.val.string.val, v.val.string.len);
 			else if (tok == WJB_VALUE)
-				fit_option_set(o, key, &v);
+				set_option(o, key, &v);
 		}
 	}
 	if (o->regularization < 0)
@@ -281,4 +282,17 @@ fit_options_parse(Jsonb *options, FitOptions *o)
 				 errhint("Set the option \"regularization\" to a positive number such as 0.1.")));
 	check_merged(o);
 	o->threads = resolve_threads(o->threads);
+}
+
+/*
+ * One option of another aggregate (owner names it in messages), applied
+ * through the same table: affinity.fit_sequences (sequences.c), after
+ * fit_options_parse gave the defaults.
+ */
+void
+fit_option_set(FitOptions *o, const char *key, JsonbValue *v, const char *owner)
+{
+	option_owner = owner;
+	set_option(o, key, v);
+	option_owner = "affinity.fit";
 }

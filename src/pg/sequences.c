@@ -162,7 +162,7 @@ parse_options(Jsonb *j, FitOptions *o)
 					(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
 					 errmsg("option \"%s\" does not apply to affinity.fit_sequences", key),
 					 errhint("affinity.fit_sequences takes \"method\", \"window\" and \"successors\".")));
-		fit_option_set(o, key, &v);
+		fit_option_set(o, key, &v, "affinity.fit_sequences");
 	}
 }
 
