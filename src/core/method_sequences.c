@@ -89,6 +89,69 @@ cmp_i64(const void *a, const void *b)
 	return x < y ? -1 : x > y;
 }
 
+/*
+ * Sort n elements of size bytes at base by cmp, asking poll between runs
+ * and between merge steps so a cancel is seen within a fraction of a
+ * second even for tens of millions of elements: runs of SORT_RUN elements
+ * are sorted with qsort, then merged pairwise through tmp (room for n
+ * elements).  Returns 1 when poll asked to stop.
+ */
+#define SORT_RUN 65536
+
+static int
+polled_sort(void *base, int64_t n, size_t size, int (*cmp) (const void *, const void *),
+			void *tmp, const AffSeqParams *p)
+{
+	char	   *src = base;
+	char	   *dst = tmp;
+	int64_t		width;
+	int64_t		i;
+	int64_t		since = 0;
+
+	for (i = 0; i < n; i += SORT_RUN)
+	{
+		qsort(src + (size_t) i * size, (size_t) (n - i < SORT_RUN ? n - i : SORT_RUN), size, cmp);
+		if (p->poll != NULL && p->poll(p->poll_arg))
+			return 1;
+	}
+	for (width = SORT_RUN; width < n; width *= 2)
+	{
+		char	   *swap;
+
+		for (i = 0; i < n; i += 2 * width)
+		{
+			int64_t		a = i;
+			int64_t		am = i + width < n ? i + width : n;
+			int64_t		b = am;
+			int64_t		bm = i + 2 * width < n ? i + 2 * width : n;
+			int64_t		o = i;
+
+			while (a < am || b < bm)
+			{
+				int64_t		from;
+
+				if (b >= bm || (a < am && cmp(src + (size_t) a * size, src + (size_t) b * size) <= 0))
+					from = a++;
+				else
+					from = b++;
+				memcpy(dst + (size_t) o++ * size, src + (size_t) from * size, size);
+				if (++since == SORT_RUN * 4)
+				{
+					since = 0;
+					if (p->poll != NULL && p->poll(p->poll_arg))
+						return 1;
+				}
+			}
+		}
+		swap = src;
+		src = dst;
+		dst = swap;
+	}
+	if (src != (char *) base)
+		memcpy(base, src, (size_t) n * size);
+	return 0;
+}
+
 /* A successor while one item's rules are gathered. */
 typedef struct Rule
 {
@@ -112,10 +175,11 @@ double
 aff_sequences_build_bytes(int64_t n)
 {
 	/*
+	 * the sort's buffer (24 n, released before the rest is allocated),
 	 * item keys (8 n), occurrences (4 n), and per item at most: offsets
 	 * twice, accumulator, gathered rules, popularity (36 per item, items <= n)
 	 */
-	return (double) n * (12.0 + 36.0);
+	return (double) n * (24.0 + 12.0 + 36.0);
 }
 
 /*
@@ -139,9 +203,12 @@ number_events(AffEvent *ev, int64_t *n_io, const AffSeqParams *p, const AffAlloc
 	int64_t		seq_steps = 0;
 	int64_t		prev_seq = 0;
 	int64_t		prev_pos = 0;
+	void	   *tmp;
 
-	qsort(ev, (size_t) n, sizeof(AffEvent), cmp_event);
-	if (p->poll != NULL && p->poll(p->poll_arg))
+	tmp = aff_alloc_array(a, (size_t) n, sizeof(AffEvent));
+	if (tmp == NULL)
+		return no_memory(err);
+	if (polled_sort(ev, n, sizeof(AffEvent), cmp_event, tmp, p))
 		return cancelled(err);
 	for (i = 0; i < n; i++)
 		if (kept == 0 || ev[i].seq != ev[kept - 1].seq || ev[i].pos != ev[kept - 1].pos ||
@@ -155,7 +222,9 @@ number_events(AffEvent *ev, int64_t *n_io, const AffSeqParams *p, const AffAlloc
 		return no_memory(err);
 	for (i = 0; i < n; i++)
 		keys[i] = ev[i].item;
-	qsort(keys, (size_t) n, sizeof(int64_t), cmp_i64);
+	if (polled_sort(keys, n, sizeof(int64_t), cmp_i64, tmp, p))
+		return cancelled(err);
+	aff_release(a, tmp);
 	for (i = 0; i < n; i++)
 		if (n_items == 0 || keys[n_items - 1] != keys[i])
 			keys[n_items++] = keys[i];

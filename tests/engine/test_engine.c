@@ -952,14 +952,15 @@ stop_poll(void *arg)
  * Sequential rules: the build's kept rules against the naive sums of the
  * rule (1 / distance between steps within the window, no rule inside a
  * step or from an item to itself), the cut to the heaviest successors,
- * the memory limit and a cancel.
+ * the memory limit and a cancel.  About 93,000 events: more than one run
+ * of the build's polled sort, so its merge is exercised too.
  */
 static void
 test_sequences(void)
 {
 	enum
 	{
-		NSEQ = 1500, NIT = 150, WIN = 4, MAXLEN = 30
+		NSEQ = 6000, NIT = 150, WIN = 4, MAXLEN = 30
 	};
 	AffEvent   *ev = malloc(sizeof(AffEvent) * NSEQ * MAXLEN);
 	AffEvent   *copy = malloc(sizeof(AffEvent) * NSEQ * MAXLEN);
