@@ -22,6 +22,7 @@ OBJS = \
 	src/core/method_knn.o \
 	src/core/method_profiles.o \
 	src/core/method_content.o \
+	src/core/method_sequences.o \
 	src/core/serve.o \
 	src/pg/guc.o \
 	src/pg/options.o \
@@ -38,14 +39,15 @@ OBJS = \
 	src/pg/text_keys.o \
 	src/pg/method_glue.o \
 	src/pg/profiles.o \
-	src/pg/content.o
+	src/pg/content.o \
+	src/pg/sequences.o
 
 EXTENSION = affinity
 EXTVERSION = 1.3
 DATA = src/affinity--1.0.sql src/affinity--1.0--1.1.sql src/affinity--1.1--1.2.sql src/affinity--1.2--1.3.sql
 PGFILEDESC = "affinity - recommendation models in SQL"
 
-REGRESS = type fit serving batch metrics methods registry text_keys mixed_keys corrupt privileges errors upgrade profiles content
+REGRESS = type fit serving batch metrics methods registry text_keys mixed_keys corrupt privileges errors upgrade profiles content sequences
 ISOLATION = refresh_race
 REGRESS_OPTS = --inputdir=. --outputdir=. --load-extension=affinity
 

@@ -15,6 +15,8 @@
 --     with a hint to run them on the primary.
 --   Content-based filtering: fit with item profiles (method content).
 --   Feature reasons: the item features behind a content score.
+--   Sequences: ordered events into sequential rules (fit_sequences),
+--     served by next_items, next_items_for_all and items_like.
 -- Each section stands alone; later changes of 1.3 go in sections of their
 -- own at the end.
 
@@ -533,3 +535,264 @@ COMMENT ON FUNCTION affinity.feature_reasons(affinity.model, bigint, bigint, int
 COMMENT ON FUNCTION affinity.feature_reasons(affinity.model, text, text, integer) IS 'which of the item''s features make up the user''s score of it (method content), largest first';
 COMMENT ON FUNCTION affinity.feature_reasons(affinity.model, bigint, text, integer) IS 'which of the item''s features make up the user''s score of it (method content), largest first';
 COMMENT ON FUNCTION affinity.feature_reasons(affinity.model, text, bigint, integer) IS 'which of the item''s features make up the user''s score of it (method content), largest first';
+
+
+-- Sequences --------------------------------------------------------------
+
+-- affinity.fit_sequences(sequence_id, item_id, position [, options]): ordered
+-- events (an order's lines, a session's views, a customer's invoices) into a
+-- model value of method sequential_rules.  Sequence and item keys are bigint
+-- or text each; the position is bigint (integer columns are cast to it),
+-- timestamp or timestamptz.  One transition function reads the types from
+-- the call.  No combine function (sequences.c says why): the aggregate runs
+-- in one state, above a parallel scan if the planner makes one.
+CREATE FUNCTION affinity.fit_sequences_transfn(internal, "any", "any", "any")
+	RETURNS internal
+	AS 'MODULE_PATHNAME', 'affinity_fit_sequences_transfn' LANGUAGE C PARALLEL SAFE;
+CREATE FUNCTION affinity.fit_sequences_transfn(internal, "any", "any", "any", jsonb)
+	RETURNS internal
+	AS 'MODULE_PATHNAME', 'affinity_fit_sequences_transfn' LANGUAGE C PARALLEL SAFE;
+CREATE FUNCTION affinity.fit_sequences_finalfn(internal)
+	RETURNS affinity.model
+	AS 'MODULE_PATHNAME', 'affinity_fit_sequences_finalfn' LANGUAGE C PARALLEL SAFE;
+CREATE AGGREGATE affinity.fit_sequences(sequence_id bigint, item_id bigint, ordered_by bigint) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(bigint, bigint, bigint) IS 'sequential rules over ordered events (bigint sequences, bigint items, bigint positions)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id bigint, item_id bigint, ordered_by bigint, options jsonb) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(bigint, bigint, bigint, jsonb) IS 'sequential rules over ordered events (bigint sequences, bigint items, bigint positions); options as jsonb (window, successors)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id bigint, item_id bigint, ordered_by timestamp) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(bigint, bigint, timestamp) IS 'sequential rules over ordered events (bigint sequences, bigint items, timestamp positions)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id bigint, item_id bigint, ordered_by timestamp, options jsonb) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(bigint, bigint, timestamp, jsonb) IS 'sequential rules over ordered events (bigint sequences, bigint items, timestamp positions); options as jsonb (window, successors)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id bigint, item_id bigint, ordered_by timestamptz) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(bigint, bigint, timestamptz) IS 'sequential rules over ordered events (bigint sequences, bigint items, timestamptz positions)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id bigint, item_id bigint, ordered_by timestamptz, options jsonb) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(bigint, bigint, timestamptz, jsonb) IS 'sequential rules over ordered events (bigint sequences, bigint items, timestamptz positions); options as jsonb (window, successors)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id bigint, item_id text, ordered_by bigint) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(bigint, text, bigint) IS 'sequential rules over ordered events (bigint sequences, text items, bigint positions)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id bigint, item_id text, ordered_by bigint, options jsonb) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(bigint, text, bigint, jsonb) IS 'sequential rules over ordered events (bigint sequences, text items, bigint positions); options as jsonb (window, successors)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id bigint, item_id text, ordered_by timestamp) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(bigint, text, timestamp) IS 'sequential rules over ordered events (bigint sequences, text items, timestamp positions)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id bigint, item_id text, ordered_by timestamp, options jsonb) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(bigint, text, timestamp, jsonb) IS 'sequential rules over ordered events (bigint sequences, text items, timestamp positions); options as jsonb (window, successors)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id bigint, item_id text, ordered_by timestamptz) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(bigint, text, timestamptz) IS 'sequential rules over ordered events (bigint sequences, text items, timestamptz positions)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id bigint, item_id text, ordered_by timestamptz, options jsonb) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(bigint, text, timestamptz, jsonb) IS 'sequential rules over ordered events (bigint sequences, text items, timestamptz positions); options as jsonb (window, successors)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id text, item_id bigint, ordered_by bigint) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(text, bigint, bigint) IS 'sequential rules over ordered events (text sequences, bigint items, bigint positions)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id text, item_id bigint, ordered_by bigint, options jsonb) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(text, bigint, bigint, jsonb) IS 'sequential rules over ordered events (text sequences, bigint items, bigint positions); options as jsonb (window, successors)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id text, item_id bigint, ordered_by timestamp) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(text, bigint, timestamp) IS 'sequential rules over ordered events (text sequences, bigint items, timestamp positions)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id text, item_id bigint, ordered_by timestamp, options jsonb) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(text, bigint, timestamp, jsonb) IS 'sequential rules over ordered events (text sequences, bigint items, timestamp positions); options as jsonb (window, successors)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id text, item_id bigint, ordered_by timestamptz) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(text, bigint, timestamptz) IS 'sequential rules over ordered events (text sequences, bigint items, timestamptz positions)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id text, item_id bigint, ordered_by timestamptz, options jsonb) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(text, bigint, timestamptz, jsonb) IS 'sequential rules over ordered events (text sequences, bigint items, timestamptz positions); options as jsonb (window, successors)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id text, item_id text, ordered_by bigint) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(text, text, bigint) IS 'sequential rules over ordered events (text sequences, text items, bigint positions)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id text, item_id text, ordered_by bigint, options jsonb) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(text, text, bigint, jsonb) IS 'sequential rules over ordered events (text sequences, text items, bigint positions); options as jsonb (window, successors)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id text, item_id text, ordered_by timestamp) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(text, text, timestamp) IS 'sequential rules over ordered events (text sequences, text items, timestamp positions)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id text, item_id text, ordered_by timestamp, options jsonb) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(text, text, timestamp, jsonb) IS 'sequential rules over ordered events (text sequences, text items, timestamp positions); options as jsonb (window, successors)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id text, item_id text, ordered_by timestamptz) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(text, text, timestamptz) IS 'sequential rules over ordered events (text sequences, text items, timestamptz positions)';
+CREATE AGGREGATE affinity.fit_sequences(sequence_id text, item_id text, ordered_by timestamptz, options jsonb) (
+	SFUNC = affinity.fit_sequences_transfn,
+	STYPE = internal,
+	FINALFUNC = affinity.fit_sequences_finalfn,
+	FINALFUNC_MODIFY = READ_WRITE,
+	PARALLEL = SAFE
+);
+COMMENT ON AGGREGATE affinity.fit_sequences(text, text, timestamptz, jsonb) IS 'sequential rules over ordered events (text sequences, text items, timestamptz positions); options as jsonb (window, successors)';
+
+-- next_items: the next items of one session from its recent items in order
+-- (last = most recent), or ordered by positions when given (equal
+-- positions are one step, as in the fit); bigint or text items, as the
+-- model's.
+CREATE FUNCTION affinity.next_items(model affinity.model, recent bigint[], k integer DEFAULT 10,
+		exclude bigint[] DEFAULT NULL, candidates bigint[] DEFAULT NULL, positions bigint[] DEFAULT NULL)
+	RETURNS TABLE (item_id bigint, score real, rank integer)
+	AS 'MODULE_PATHNAME', 'affinity_next_items' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	COST 1000 ROWS 10;
+COMMENT ON FUNCTION affinity.next_items(affinity.model, bigint[], integer, bigint[], bigint[], bigint[]) IS 'the k items most likely to come next after a session''s recent items, by sequential rules';
+CREATE FUNCTION affinity.next_items(model affinity.model, recent text[], k integer DEFAULT 10,
+		exclude text[] DEFAULT NULL, candidates text[] DEFAULT NULL, positions bigint[] DEFAULT NULL)
+	RETURNS TABLE (item_id text, score real, rank integer)
+	AS 'MODULE_PATHNAME', 'affinity_next_items' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	COST 1000 ROWS 10;
+COMMENT ON FUNCTION affinity.next_items(affinity.model, text[], integer, text[], text[], bigint[]) IS 'the k items most likely to come next after a session''s recent items, by sequential rules (text keys)';
+
+-- next_items_for_all: many sessions in one call, their events as two
+-- arrays of one length (element i: session, item), in order or by the
+-- positions of a third array.
+CREATE FUNCTION affinity.next_items_for_all(model affinity.model, session_ids bigint[], item_ids bigint[],
+		k integer DEFAULT 10, exclude bigint[] DEFAULT NULL, candidates bigint[] DEFAULT NULL,
+		positions bigint[] DEFAULT NULL)
+	RETURNS TABLE (session_id bigint, item_id bigint, score real, rank integer)
+	AS 'MODULE_PATHNAME', 'affinity_next_items_for_all' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	COST 100000 ROWS 10000;
+COMMENT ON FUNCTION affinity.next_items_for_all(affinity.model, bigint[], bigint[], integer, bigint[], bigint[], bigint[]) IS 'the k next items of each session, from the sessions'' events as (session, item) arrays in order';
+CREATE FUNCTION affinity.next_items_for_all(model affinity.model, session_ids bigint[], item_ids text[],
+		k integer DEFAULT 10, exclude text[] DEFAULT NULL, candidates text[] DEFAULT NULL,
+		positions bigint[] DEFAULT NULL)
+	RETURNS TABLE (session_id bigint, item_id text, score real, rank integer)
+	AS 'MODULE_PATHNAME', 'affinity_next_items_for_all' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	COST 100000 ROWS 10000;
+COMMENT ON FUNCTION affinity.next_items_for_all(affinity.model, bigint[], text[], integer, text[], text[], bigint[]) IS 'the k next items of each session, from the sessions'' events as (session, item) arrays in order';
+CREATE FUNCTION affinity.next_items_for_all(model affinity.model, session_ids text[], item_ids bigint[],
+		k integer DEFAULT 10, exclude bigint[] DEFAULT NULL, candidates bigint[] DEFAULT NULL,
+		positions bigint[] DEFAULT NULL)
+	RETURNS TABLE (session_id text, item_id bigint, score real, rank integer)
+	AS 'MODULE_PATHNAME', 'affinity_next_items_for_all' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	COST 100000 ROWS 10000;
+COMMENT ON FUNCTION affinity.next_items_for_all(affinity.model, text[], bigint[], integer, bigint[], bigint[], bigint[]) IS 'the k next items of each session, from the sessions'' events as (session, item) arrays in order';
+CREATE FUNCTION affinity.next_items_for_all(model affinity.model, session_ids text[], item_ids text[],
+		k integer DEFAULT 10, exclude text[] DEFAULT NULL, candidates text[] DEFAULT NULL,
+		positions bigint[] DEFAULT NULL)
+	RETURNS TABLE (session_id text, item_id text, score real, rank integer)
+	AS 'MODULE_PATHNAME', 'affinity_next_items_for_all' LANGUAGE C IMMUTABLE PARALLEL SAFE
+	COST 100000 ROWS 10000;
+COMMENT ON FUNCTION affinity.next_items_for_all(affinity.model, text[], text[], integer, text[], text[], bigint[]) IS 'the k next items of each session, from the sessions'' events as (session, item) arrays in order';

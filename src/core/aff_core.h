@@ -88,6 +88,7 @@ extern int	aff_mul_overflows(size_t a, size_t b, size_t *result);
 #define AFF_METHOD_ITEM_KNN		4
 #define AFF_METHOD_ITEM_PROFILES	5	/* item content, no users (profiles.h) */
 #define AFF_METHOD_CONTENT		6	/* content-based filtering over item profiles */
+#define AFF_METHOD_SEQUENTIAL_RULES	7	/* rules over ordered events, no users (sequences.h) */
 
 #define AFF_SOLVER_CG			1
 #define AFF_SOLVER_CHOLESKY		2

@@ -11,6 +11,7 @@
  */
 #include "method.h"
 #include "als.h"
+#include "sequences.h"
 
 #include <math.h>
 #include <stddef.h>
@@ -24,6 +25,7 @@ const AffMethod *const aff_methods[] = {
 	&aff_method_item_knn,
 	&aff_method_item_profiles,
 	&aff_method_content,
+	&aff_method_sequential_rules,
 };
 const int	aff_n_methods = (int) (sizeof(aff_methods) / sizeof(aff_methods[0]));
 
@@ -125,6 +127,11 @@ const AffOptionDef aff_option_defs[AFF_OPT_COUNT] = {
 	normalization_choices, 3, OPT(normalization), AFF_NO_FIELD},
 	{AFF_OPT_MIN_DF, "min_document_frequency", NULL, AFF_OPTTYPE_INT, 1, INT_MAX_D, false,
 	NULL, 0, OPT(min_document_frequency), AFF_NO_FIELD},
+	/* sequential_rules: kept in its sequence_info section, not in the header */
+	{AFF_OPT_WINDOW, "window", NULL, AFF_OPTTYPE_INT, 1, AFF_MAX_WINDOW, false,
+	NULL, 0, OPT(window), AFF_NO_FIELD},
+	{AFF_OPT_SUCCESSORS, "successors", NULL, AFF_OPTTYPE_INT, 1, AFF_MAX_SUCCESSORS, false,
+	NULL, 0, OPT(successors), AFF_NO_FIELD},
 };
 
 /*

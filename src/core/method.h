@@ -46,6 +46,8 @@ typedef enum AffOptionId
 	AFF_OPT_VERBOSE,
 	AFF_OPT_NORMALIZATION,		/* item_profiles */
 	AFF_OPT_MIN_DF,
+	AFF_OPT_WINDOW,				/* sequential_rules */
+	AFF_OPT_SUCCESSORS,
 	AFF_OPT_COUNT
 } AffOptionId;
 
@@ -72,6 +74,8 @@ typedef struct AffOptions
 	bool		verbose;
 	int			normalization;	/* item_profiles: AFF_NORM_* (profiles.h) */
 	int			min_document_frequency;
+	int			window;			/* sequential_rules: steps (sequences.h) */
+	int			successors;		/* sequential_rules: kept per item */
 } AffOptions;
 
 typedef enum AffOptionType
@@ -233,6 +237,7 @@ extern const AffMethod aff_method_ease;
 extern const AffMethod aff_method_item_knn;
 extern const AffMethod aff_method_item_profiles;
 extern const AffMethod aff_method_content;
+extern const AffMethod aff_method_sequential_rules;
 
 /* Fit scaffolding shared by the method files (method.c). */
 extern void aff_fit_header(AffModelParts *parts, const AffOptions *o,

@@ -79,6 +79,8 @@ const AffSectionDef aff_section_defs[AFF_SEC_MAX + 1] = {
 	/* content: n_users x features, checked by its check_content */
 	{AFF_SEC_USER_PROFILES, "user_profiles", 4, AFF_NEED_METHOD, AFF_COUNT_FREE, 0,
 	AFF_FORGET_CUT_USER_SPAN},
+	/* sequential_rules: its check_content checks the figures */
+	{AFF_SEC_SEQUENCE_INFO, "sequence_info", 8, AFF_NEED_METHOD, AFF_COUNT_FIXED, 12, AFF_FORGET_KEEP},
 };
 
 size_t

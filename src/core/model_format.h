@@ -67,7 +67,9 @@
 #define AFF_SEC_PROFILE_VECTORS 27	/* float [n_items * dimension] dense rows */
 /* content: each user's preference vector over the profiles' features */
 #define AFF_SEC_USER_PROFILES	28	/* float [n_users * features] */
-#define AFF_SEC_MAX				28
+/* sequential_rules (sequences.h): its rules are in the neighbour sections */
+#define AFF_SEC_SEQUENCE_INFO	29	/* int64 [12]: window, successors, counts */
+#define AFF_SEC_MAX				29
 
 typedef struct AffModelHeader
 {

@@ -76,6 +76,7 @@ extern bool affinity_verbose;
 typedef AffOptions FitOptions;
 
 extern void fit_options_parse(Jsonb *options, FitOptions *o);
+extern void fit_option_set(FitOptions *o, const char *key, JsonbValue *v, const char *owner);
 extern int	resolve_threads(int requested);
 
 /* Engine glue (model_io.c) */
@@ -136,6 +137,8 @@ extern void fit_profiles_missing(const FitOptions *o);
 extern void fit_profiles_hash_key(bytea *profiles, uint64 key[2]);
 extern void fit_profiles_attach(bytea *profiles, AffMatrix *m, AffModelParts *parts,
 								const AffAllocator *a);
+/* Sequences (sequences.c) */
+extern void refuse_sequences(const AffModelView *v, const char *fn) pg_attribute_noreturn();
 
 /* jsonb assembly (serving.c) */
 extern Jsonb *jsonb_from_cstring(const char *s);

@@ -43,7 +43,12 @@ defaults(FitOptions *o)
 	o->verbose = affinity_verbose;
 	o->normalization = AFF_NORM_L2;
 	o->min_document_frequency = 1;
+	o->window = 10;
+	o->successors = 100;
 }
+
+/* Which aggregate's options are being read, for messages. */
+static const char *option_owner = "affinity.fit";
 
 static void
 bad_value(const AffOptionDef *d, const char *shown)
@@ -53,7 +58,7 @@ bad_value(const AffOptionDef *d, const char *shown)
 	aff_option_describe_bounds(d, want, sizeof(want));
 	ereport(ERROR,
 			(errcode(ERRCODE_INVALID_PARAMETER_VALUE),
-			 errmsg("invalid value for affinity.fit option \"%s\"", d->name),
+			 errmsg("invalid value for %s option \"%s\"", option_owner, d->name),
 			 errdetail("The value given is %s.", shown),
 			 errhint("\"%s\" takes %s.", d->name, want)));
 }
@@ -243,6 +248,7 @@ check_merged(const FitOptions *o)
 void
 fit_options_parse(Jsonb *options, FitOptions *o)
 {
+	option_owner = "affinity.fit";
 	defaults(o);
 	if (options != NULL)
 	{
@@ -276,4 +282,17 @@ fit_options_parse(Jsonb *options, FitOptions *o)
 				 errhint("Set the option \"regularization\" to a positive number such as 0.1.")));
 	check_merged(o);
 	o->threads = resolve_threads(o->threads);
+}
+
+/*
+ * One option of another aggregate (owner names it in messages), applied
+ * through the same table: affinity.fit_sequences (sequences.c), after
+ * fit_options_parse gave the defaults.
+ */
+void
+fit_option_set(FitOptions *o, const char *key, JsonbValue *v, const char *owner)
+{
+	option_owner = owner;
+	set_option(o, key, v);
+	option_owner = "affinity.fit";
 }

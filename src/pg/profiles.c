@@ -605,6 +605,8 @@ refuse_catalogue(const AffModelView *v, const char *fn)
 {
 	const int64_t *info = v->sections[AFF_SEC_PROFILE_INFO];
 
+	if (v->h->method == AFF_METHOD_SEQUENTIAL_RULES)
+		refuse_sequences(v, fn);
 	ereport(ERROR,
 			(errcode(ERRCODE_FEATURE_NOT_SUPPORTED),
 			 errmsg("%s cannot serve item profiles", fn),
@@ -616,7 +618,8 @@ refuse_catalogue(const AffModelView *v, const char *fn)
 
 /*
  * Called by model_get for every value: a catalogue value goes only to the
- * functions that read item content (items_like, describe).
+ * functions that read item content (items_like, describe), and a value of
+ * sequential rules also to next_items and next_items_for_all.
  */
 void
 check_catalogue_call(FunctionCallInfo fcinfo, const AffModelView *v)
@@ -627,6 +630,9 @@ check_catalogue_call(FunctionCallInfo fcinfo, const AffModelView *v)
 		return;
 	fn = fcinfo->flinfo ? get_func_name(fcinfo->flinfo->fn_oid) : NULL;
 	if (fn != NULL && (strcmp(fn, "items_like") == 0 || strcmp(fn, "describe") == 0))
+		return;
+	if (fn != NULL && v->h->method == AFF_METHOD_SEQUENTIAL_RULES &&
+		(strcmp(fn, "next_items") == 0 || strcmp(fn, "next_items_for_all") == 0))
 		return;
 	refuse_catalogue(v, fn ? fn : "this function");
 }

@@ -19,6 +19,7 @@
 #include "model_format.h"
 #include "serve.h"
 #include "als.h"
+#include "sequences.h"
 
 static int	failures = 0;
 
@@ -940,6 +941,185 @@ test_memory_guard(void)
 		  "memory guard: the detail names the text keys", st, AFF_ERR_LIMIT);
 }
 
+static int
+stop_poll(void *arg)
+{
+	(void) arg;
+	return 1;
+}
+
+/*
+ * Sequential rules: the build's kept rules against the naive sums of the
+ * rule (1 / distance between steps within the window, no rule inside a
+ * step or from an item to itself), the cut to the heaviest successors,
+ * the memory limit and a cancel.  About 93,000 events: more than one run
+ * of the build's polled sort, so its merge is exercised too.
+ */
+static void
+test_sequences(void)
+{
+	enum
+	{
+		NSEQ = 6000, NIT = 150, WIN = 4, MAXLEN = 30
+	};
+	AffEvent   *ev = malloc(sizeof(AffEvent) * NSEQ * MAXLEN);
+	AffEvent   *copy = malloc(sizeof(AffEvent) * NSEQ * MAXLEN);
+	double	   *W = calloc((size_t) NIT * NIT, sizeof(double));
+	int64_t		n = 0;
+	int64_t		s;
+	int			succ;
+
+	for (s = 0; s < NSEQ; s++)
+	{
+		int			len = 1 + (int) (next_u64() % MAXLEN);
+		int64_t		first = n;
+		int64_t		a;
+		int64_t		b;
+
+		for (a = 0; a < len; a++)
+		{
+			uint64_t	r = next_u64();
+
+			ev[n].seq = 7 * s - 5000;
+			ev[n].pos = (int64_t) (r % 12) * 1000;
+			/* item keys 3 * j, with a skew towards small j */
+			ev[n].item = 3 * (int64_t) ((r >> 8) % (1 + (r >> 20) % NIT));
+			n++;
+		}
+		/* naive sums: distinct (position, item) events; step = rank of the position */
+		for (a = first; a < n; a++)
+			for (b = first; b < n; b++)
+			{
+				int64_t		c;
+				int			dup = 0;
+				int			da = 0;
+				int			db = 0;
+				int64_t		seen[12] = {0};
+
+				for (c = first; c < a && !dup; c++)
+					dup = ev[c].pos == ev[a].pos && ev[c].item == ev[a].item;
+				for (c = first; c < b && !dup; c++)
+					dup = ev[c].pos == ev[b].pos && ev[c].item == ev[b].item;
+				if (dup || ev[b].pos <= ev[a].pos || ev[a].item == ev[b].item)
+					continue;
+				for (c = first; c < n; c++)
+					seen[ev[c].pos / 1000] = 1;
+				for (c = 0; c < ev[a].pos / 1000; c++)
+					da += (int) seen[c];
+				for (c = 0; c < ev[b].pos / 1000; c++)
+					db += (int) seen[c];
+				if (db - da <= WIN)
+					W[(ev[a].item / 3) * NIT + ev[b].item / 3] += 1.0 / (db - da);
+			}
+	}
+	for (succ = 0; succ < 2; succ++)
+	{
+		Arena		ar = {0};
+		AffAllocator a = {arena_alloc, arena_release, &ar};
+		AffSeqParams p = {WIN, succ == 0 ? 100000 : 3, AFF_POSITION_NUMBER, 0, 0, no_poll, NULL};
+		AffSeqBuild out;
+		AffModelParts parts;
+		AffError	err;
+		AffStatus	st;
+		double		worst = 0;
+		int64_t		missing = 0;
+		int64_t		bad_cut = 0;
+		int64_t		i;
+
+		memcpy(copy, ev, sizeof(AffEvent) * n);
+		memset(&parts, 0, sizeof(parts));
+		st = aff_sequences_build(copy, n, &p, &a, &parts, &out, &err);
+		check(st == AFF_OK, "sequential_rules: the build succeeds", st, AFF_OK);
+		if (st != AFF_OK)
+		{
+			arena_free(&ar);
+			continue;
+		}
+		{
+			const int64_t *ptr = parts.data[AFF_SEC_NEIGHBOR_PTR];
+			const int32_t *idx = parts.data[AFF_SEC_NEIGHBOR_IDX];
+			const float *w = parts.data[AFF_SEC_NEIGHBOR_SIM];
+			const int64_t *keys = parts.data[AFF_SEC_ITEM_KEYS];
+			int64_t		total = 0;
+
+			for (i = 0; i < out.n_items; i++)
+			{
+				int64_t		pi = keys[i] / 3;
+				int64_t		j;
+				int64_t		rules = 0;
+				double		kth = 0;
+
+				for (j = 0; j < NIT; j++)
+					rules += W[pi * NIT + j] > 0;
+				total += rules;
+				for (j = ptr[i]; j < ptr[i + 1]; j++)
+				{
+					double		want = W[pi * NIT + keys[idx[j]] / 3];
+
+					if (want <= 0)
+						missing++;
+					else if (fabs(w[j] - want) / want > worst)
+						worst = fabs(w[j] - want) / want;
+					kth = w[j];
+				}
+				if (ptr[i + 1] - ptr[i] != (rules < p.successors ? rules : p.successors))
+					bad_cut++;
+				/* nothing left out weighs more than the lightest kept */
+				for (j = 0; j < NIT && ptr[i + 1] > ptr[i]; j++)
+				{
+					int64_t		k;
+					int			kept = 0;
+
+					for (k = ptr[i]; k < ptr[i + 1]; k++)
+						kept |= keys[idx[k]] / 3 == j;
+					if (!kept && W[pi * NIT + j] > kth * (1 + 1e-6))
+						bad_cut++;
+				}
+			}
+			if (succ == 0)
+			{
+				int64_t		rules = ((const int64_t *) parts.data[AFF_SEC_SEQUENCE_INFO])[AFF_SINFO_RULES];
+
+				check(rules == total, "sequential_rules: the distinct rules are the naive count",
+					  (double) rules, (double) total);
+			}
+		}
+		check(missing == 0 && worst < 1e-6,
+			  succ == 0 ? "sequential_rules: every rule weight equals the naive sum (all kept; max relative error)" :
+			  "sequential_rules: kept weights equal the naive sums (3 successors; max relative error)", worst, 1e-6);
+		check(bad_cut == 0, succ == 0 ? "sequential_rules: every rule is kept" :
+			  "sequential_rules: each item keeps its 3 heaviest rules", (double) bad_cut, 0);
+		arena_free(&ar);
+	}
+	{
+		Arena		ar = {0};
+		AffAllocator a = {arena_alloc, arena_release, &ar};
+		AffSeqParams p = {WIN, 100000, AFF_POSITION_NUMBER, 0, 0, stop_poll, NULL};
+		AffSeqBuild out;
+		AffModelParts parts;
+		AffError	err;
+		AffStatus	st;
+
+		memcpy(copy, ev, sizeof(AffEvent) * n);
+		memset(&parts, 0, sizeof(parts));
+		st = aff_sequences_build(copy, n, &p, &a, &parts, &out, &err);
+		check(st == AFF_ERR_CANCELLED, "sequential_rules: a poll asking to stop cancels the build",
+			  st, AFF_ERR_CANCELLED);
+		arena_free(&ar);
+		memcpy(copy, ev, sizeof(AffEvent) * n);
+		p.poll = no_poll;
+		p.memory_limit = 64 * 1024;
+		memset(&parts, 0, sizeof(parts));
+		st = aff_sequences_build(copy, n, &p, &a, &parts, &out, &err);
+		check(st == AFF_ERR_LIMIT && strstr(err.hint, "successors") != NULL,
+			  "sequential_rules: the kept rules stop at the memory limit", st, AFF_ERR_LIMIT);
+		arena_free(&ar);
+	}
+	free(ev);
+	free(copy);
+	free(W);
+}
+
 int
 main(void)
 {
@@ -950,6 +1130,7 @@ main(void)
 	test_method(AFF_METHOD_ITEM_KNN, 300, 80);
 	test_als_fit();
 	test_memory_guard();
+	test_sequences();
 	printf("%s: %d failure(s)\n", failures ? "FAILED" : "passed", failures);
 	return failures ? 1 : 0;
 }

@@ -73,6 +73,7 @@ SEC = {
     22: ("feature_text", "B"), 23: ("feature_items", "i"), 24: ("profile_ptr", "q"),
     25: ("profile_features", "i"), 26: ("profile_values", "f"), 27: ("profile_vectors", "f"),
     28: ("user_profiles", "f"),
+    29: ("sequence_info", "q"),
 }
 KIND = {name: k for k, (name, _) in SEC.items()}
 METHOD = {"implicit_als": 1, "popularity": 2, "ease": 3, "item_knn": 4}
@@ -673,6 +674,12 @@ SELECT decode(affinity.fit(u, i, 1, {opts},
                             FROM generate_series(0, 5) i))::text, 'base64')
 FROM (VALUES ('ana'::text, 'SKU-1'::text), ('ana', 'SKU-3'), ('bo', 'SKU-4')) v(u, i)""",
      '{"method": "content", "regularization": 0.5}'),
+    ("sequences_rules", """
+SELECT decode(affinity.fit_sequences(s, (s * p) % 7, p, {opts})::text, 'base64')
+FROM generate_series(1, 9) s, generate_series(1, 4) p""", '{"window": 2, "successors": 3}'),
+    ("sequences_text", """
+SELECT decode(affinity.fit_sequences('v' || s, 'SKU-' || (s + p) % 5, p / 2, {opts})::text, 'base64')
+FROM generate_series(1, 6) s, generate_series(1, 5) p""", '{"window": 1}'),
     ("popularity_wide", """
 SELECT decode(affinity.fit(u, i, 1, {opts})::text, 'base64')
 FROM generate_series(1, 30) u, generate_series(1, 30) i WHERE (u * i) % 7 = 1""",
