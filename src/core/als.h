@@ -40,6 +40,15 @@ typedef struct AffAls
 	double	   *block_sums;		/* per-block partial sums, summed in order */
 	int64_t		max_blocks;
 	int			gram_is_y;		/* gram currently holds Y^T Y */
+	/* cg */
+	float	   *gram_sym_f;		/* [f * f] gram, full, single precision */
+	float	   *fscratch;		/* per-thread cg vectors and gather buffer */
+	size_t		fscratch_len;	/* floats per thread */
+	double	   *block_sq;		/* per-block sums of |y|^2 (the loss) */
+	int64_t    *user_starts;	/* [n_user_blocks + 1] first row of each block */
+	int64_t    *item_starts;	/* [n_item_blocks + 1] */
+	int64_t		n_user_blocks;
+	int64_t		n_item_blocks;
 } AffAls;
 
 extern double aff_confidence(int kind, double alpha, double epsilon, double w);
