@@ -52,6 +52,7 @@ main(int argc, char **argv)
 	int64_t		n_users, n_items, nnz, i;
 	uint64_t	state = 12345;
 	int			sweeps, s;
+	double		t_build, t_init;
 
 	if (argc != 8)
 	{
@@ -98,15 +99,24 @@ main(int argc, char **argv)
 	bp.index_key[1] = 0x13198a2e03707344ULL;
 	bp.poll = NULL;
 	bp.poll_arg = NULL;
-	if (aff_matrix_build(rows, nnz, &bp, &a, &m, &err) != AFF_OK ||
-		aff_als_init(&als, &m, &p, &a, &err) != AFF_OK)
+	t_build = now();
+	if (aff_matrix_build(rows, nnz, &bp, &a, &m, &err) != AFF_OK)
 	{
 		fprintf(stderr, "%s: %s\n", err.msg, err.detail);
 		return 1;
 	}
+	t_build = now() - t_build;
+	t_init = now();
+	if (aff_als_init(&als, &m, &p, &a, &err) != AFF_OK)
+	{
+		fprintf(stderr, "%s: %s\n", err.msg, err.detail);
+		return 1;
+	}
+	t_init = now() - t_init;
 	printf("users %lld items %lld nnz %lld factors %d solver %s threads %d\n",
 		   (long long) m.n_users, (long long) m.n_items, (long long) m.nnz,
 		   p.factors, argv[5], p.threads);
+	printf("matrix build %.3f s, initial factors %.3f s\n", t_build, t_init);
 	for (s = 0; s < sweeps; s++)
 	{
 		double		t0 = now();

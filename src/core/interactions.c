@@ -164,44 +164,49 @@ int64_byte(const int64_t *k, int pass)
 }
 
 /*
- * One LSD radix sort body for both element types: PASSES byte passes over
- * n elements of TYPE, BYTE(element pointer, pass) giving the pass's byte,
- * with tmp (n more elements) as the second buffer.  Passes whose byte is
- * the same for every element are skipped, so ids that fit in a few bytes
- * cost a few passes.  Stable and O(n) per pass.  The enclosing function
- * returns 1 when the poll asks to stop (the data is then left unsorted).
+ * One LSD radix sort body for both element types: passes FIRST..PASSES-1
+ * over n elements of TYPE, BYTE(element pointer, pass) giving the pass's
+ * byte, with tmp (n more elements) as the second buffer.  The histograms of
+ * every pass are counted in one read of the data (a byte's histogram does
+ * not depend on the order), and passes whose byte is the same for every
+ * element are skipped, so ids that fit in a few bytes cost a few passes.
+ * Stable and O(n) per pass.  The enclosing function returns 1 when the
+ * poll asks to stop (the data is then left unsorted).  count: PASSES * 256
+ * entries of scratch.
  */
-#define RADIX_SORT_BODY(TYPE, PASSES, BYTE) \
+#define RADIX_SORT_BODY(TYPE, FIRST, PASSES, BYTE, count) \
 	do { \
 		TYPE	   *src = data; \
 		TYPE	   *dst = tmp; \
 		int			pass; \
-		for (pass = 0; pass < (PASSES); pass++) \
+		int64_t		i; \
+		memset(count, 0, sizeof(int64_t) * 256 * (PASSES)); \
+		for (i = 0; i < n; i++) \
 		{ \
-			int64_t		count[256] = {0}; \
-			int64_t		i; \
+			if (stop_at(p, i)) \
+				return 1; \
+			for (pass = (FIRST); pass < (PASSES); pass++) \
+				count[pass * 256 + BYTE(&src[i], pass)]++; \
+		} \
+		for (pass = (FIRST); pass < (PASSES); pass++) \
+		{ \
+			int64_t    *cnt = count + pass * 256; \
 			int64_t		at = 0; \
 			int			b; \
 			TYPE	   *t; \
-			for (i = 0; i < n; i++) \
-			{ \
-				if (stop_at(p, i)) \
-					return 1; \
-				count[BYTE(&src[i], pass)]++; \
-			} \
-			if (count[BYTE(&src[0], pass)] == n) \
+			if (cnt[BYTE(&src[0], pass)] == n) \
 				continue; \
 			for (b = 0; b < 256; b++) \
 			{ \
-				int64_t		c = count[b]; \
-				count[b] = at; \
+				int64_t		c = cnt[b]; \
+				cnt[b] = at; \
 				at += c; \
 			} \
 			for (i = 0; i < n; i++) \
 			{ \
 				if (stop_at(p, i)) \
 					return 1; \
-				dst[count[BYTE(&src[i], pass)]++] = src[i]; \
+				dst[cnt[BYTE(&src[i], pass)]++] = src[i]; \
 			} \
 			t = src; \
 			src = dst; \
@@ -212,18 +217,87 @@ int64_byte(const int64_t *k, int pass)
 		return 0; \
 	} while (0)
 
-/* Rows by (user, item, weight); it replaces a comparison sort on the fit's hot path. */
+/* Weight bits of a row: non-negative floats order like their bit patterns. */
+static inline uint32_t
+weight_bits(const AffTriple *t)
+{
+	uint32_t	w;
+
+	memcpy(&w, &t->weight, 4);
+	return w;
+}
+
+static int
+cmp_weight_bits(const void *a, const void *b)
+{
+	uint32_t	x = weight_bits(a);
+	uint32_t	y = weight_bits(b);
+
+	return x < y ? -1 : x > y;
+}
+
+/*
+ * Rows by (user, item, weight); it replaces a comparison sort on the fit's
+ * hot path.  The radix passes order by (user, item) (passes 4-19); the rows
+ * of one pair, rare, are then ordered by weight where they lie (insertion
+ * for a few, qsort for a long run: equal weight bits are equal rows), the
+ * same order the weight's own radix passes would give.
+ */
+static int
+radix_sort_user_item(AffTriple *data, AffTriple *tmp, int64_t n, const AffBuildParams *p)
+{
+	int64_t		count[20 * 256];
+
+	RADIX_SORT_BODY(AffTriple, 4, 20, triple_byte, count);
+}
+
 static int
 radix_sort_triples(AffTriple *data, AffTriple *tmp, int64_t n, const AffBuildParams *p)
 {
-	RADIX_SORT_BODY(AffTriple, 20, triple_byte);
+	int64_t		start = 0;
+
+	if (radix_sort_user_item(data, tmp, n, p))
+		return 1;
+	while (start < n)
+	{
+		int64_t		end = start + 1;
+
+		if (stop_at(p, start))
+			return 1;
+		while (end < n && data[end].user == data[start].user &&
+			   data[end].item == data[start].item)
+			end++;
+		if (end - start > 16)
+			qsort(data + start, (size_t) (end - start), sizeof(AffTriple), cmp_weight_bits);
+		else if (end - start > 1)
+		{
+			int64_t		a;
+
+			for (a = start + 1; a < end; a++)
+			{
+				AffTriple	t = data[a];
+				int64_t		b = a;
+
+				while (b > start && weight_bits(&data[b - 1]) > weight_bits(&t))
+				{
+					data[b] = data[b - 1];
+					b--;
+				}
+				data[b] = t;
+			}
+		}
+		start = end;
+	}
+	return 0;
 }
 
 /* int64 keys, ascending. */
 static int
 radix_sort_int64(int64_t *data, int64_t *tmp, int64_t n, const AffBuildParams *p)
 {
-	RADIX_SORT_BODY(int64_t, 8, int64_byte);
+	int64_t		count[8 * 256];
+
+	RADIX_SORT_BODY(int64_t, 0, 8, int64_byte, count);
 }
 
 /*
