@@ -1,0 +1,158 @@
+"""Forced-parallel fits give the serial fit's model, again and again.
+
+Partial states of affinity.fit travel from parallel workers to the leader as
+bytea (serialfn, deserialfn) and are combined there.  A fault in that path
+shows as an error while the leader reads a state back ("insufficient data
+left in message", "invalid message format"), as rows lost or counted twice,
+or as another model.  This test forces the parallel plan (no setup or tuple
+cost, no minimum table size, two workers), checks that workers really ran,
+and fits the same invented rows many times over with bigint keys, text keys
+and both mixed pairs, each fit against the serial fit of the same rows:
+
+* every parallel fit succeeds;
+* users, items, interactions, rows read and duplicates summed are the
+  serial fit's;
+* bigint keys: the implicit_als model is the serial one (same fingerprint,
+  which covers the factors), and its top 20 items of 50 customers score
+  exactly alike;
+* text and mixed keys (a fit draws its own hash key for texts, so the
+  factors depend on it): item_knn, which does not, scores every item of
+  40 customers alike to float rounding.
+"""
+
+import os
+import sys
+
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from _common import Checker, connect, drop_schema, fresh_schema  # noqa: E402
+
+SCHEMA = "affinity_check_parallel_fit"
+N_ROWS = 300000              # about 1600 pages: every worker gets a share
+REPEATS = 6                  # parallel fits per key type and method
+SCORE_RTOL = 1e-6            # item_knn scores of two fits: float rounding only
+
+PARALLEL = ["SET max_parallel_workers_per_gather = 2", "SET parallel_setup_cost = 0",
+            "SET parallel_tuple_cost = 0", "SET min_parallel_table_scan_size = 0",
+            "SET parallel_leader_participation = on"]
+SERIAL = ["SET max_parallel_workers_per_gather = 0"]
+COUNTS = ("users", "items", "interactions", "rows_read", "rows_skipped", "duplicates_summed")
+
+# the key expressions of each key type over the table's integer columns
+KINDS = {
+    "bigint": ("u", "i", "{}"),
+    "text": ("'cust-' || u", "'sku-' || i", "'cust-' || {}"),
+    "bigint-text": ("u", "'sku-' || i", "{}::text"),   # a text side serves in text form
+    "text-bigint": ("'cust-' || u", "i", "'cust-' || {}"),
+}
+
+
+def run(cur, sets):
+    for q in sets:
+        cur.execute(q)
+
+
+def fit_sql(kind, opts, into=None):
+    """The fit over pf_rows; with `into`, a CREATE TABLE into(model) of it."""
+    uk, ik, _ = KINDS[kind]
+    if into:
+        return ("CREATE TABLE %s AS SELECT affinity.fit(%s, %s, w, '%s') AS model FROM pf_rows"
+                % (into, uk, ik, opts))
+    return "SELECT affinity.fit(%s, %s, w, '%s') FROM pf_rows" % (uk, ik, opts)
+
+
+def facts_of(d):
+    return tuple(d.get(x) for x in COUNTS)
+
+
+def scores(cur, kind, table, users, k):
+    ukey = KINDS[kind][2].format("g")
+    cur.execute("SELECT g, t.item_id::text, t.score FROM %s m, unnest(%%s::bigint[]) g, "
+                "affinity.top_items(m.model, %s, %d) t" % (table, ukey, k), (users,))
+    return {(g, i): s for g, i, s in cur.fetchall()}
+
+
+def main():
+    ck = Checker("check_parallel_fit")
+    conn = connect()
+    cur = conn.cursor()
+    fresh_schema(cur, SCHEMA)
+    # invented rows: 8192 customers, 1024 products, weights 1 to 5, duplicate pairs
+    cur.execute("""CREATE TABLE pf_rows AS
+                   SELECT (hashint4(g) & 8191)::bigint AS u,
+                          (hashint4(g * 31 + 7) & 1023)::bigint AS i,
+                          (1 + g %% 5)::real AS w
+                   FROM generate_series(1, %d) g""" % N_ROWS)
+    cur.execute("ANALYZE pf_rows")
+    sample = list(range(0, 2000, 40))       # 50 customers (about 36 rows each)
+
+    for kind in KINDS:
+        for method, opts, k in (("implicit_als", '{"factors": 8, "iterations": 3, "threads": 2}', 20),
+                                ("item_knn", '{"method": "item_knn"}', 2000)):
+            if method == "item_knn" and kind == "bigint":
+                continue        # bigint keys: implicit_als already compares whole models
+            label = "%s keys, %s" % (kind, method)
+            sql = fit_sql(kind, opts)
+            run(cur, SERIAL)
+            cur.execute("DROP TABLE IF EXISTS pf_serial")
+            cur.execute(fit_sql(kind, opts, "pf_serial"))
+            cur.execute("SELECT affinity.describe(model) FROM pf_serial")
+            d_ser = cur.fetchone()[0]
+            ser_top = scores(cur, kind, "pf_serial", sample, k)
+
+            run(cur, PARALLEL)
+            cur.execute("EXPLAIN (ANALYZE, COSTS OFF, TIMING OFF) " + sql)
+            plan = "\n".join(r[0] for r in cur.fetchall())
+            ck.check("Partial Aggregate" in plan and "Workers Launched: 0" not in plan
+                     and "Workers Launched" in plan,
+                     label + ": the plan runs parallel workers", "" if "Partial Aggregate" in plan else plan)
+            errors, differ, worst = [], 0, 0.0
+            for rep in range(REPEATS):
+                cur.execute("DROP TABLE IF EXISTS pf_par")
+                try:
+                    cur.execute(fit_sql(kind, opts, "pf_par"))
+                except Exception as e:  # noqa: BLE001 - every failure is reported
+                    errors.append(str(e).strip().splitlines()[0])
+                    continue
+                cur.execute("SELECT affinity.describe(model) FROM pf_par")
+                d = cur.fetchone()[0]
+                if facts_of(d) != facts_of(d_ser):
+                    differ += 1
+                    print("%s: run %d counts %s, serial %s" % (label, rep, facts_of(d), facts_of(d_ser)))
+                if method == "implicit_als" and kind == "bigint" and d.get("fingerprint") != d_ser.get("fingerprint"):
+                    differ += 1
+                    print("%s: run %d fingerprint %s, serial %s" % (label, rep, d.get("fingerprint"),
+                                                                      d_ser.get("fingerprint")))
+                if method == "implicit_als" and kind != "bigint":
+                    continue
+                par_top = scores(cur, kind, "pf_par", sample, k)
+                if par_top.keys() != ser_top.keys():
+                    differ += 1
+                    print("%s: run %d serves %d (customer, item) pairs, serial %d"
+                          % (label, rep, len(par_top), len(ser_top)))
+                    continue
+                for key, s in ser_top.items():
+                    rel = abs(par_top[key] - s) / max(abs(s), 1e-30)
+                    worst = max(worst, rel)
+            run(cur, SERIAL)
+            ck.check(not errors, label + ": %d forced-parallel fits succeed" % REPEATS,
+                     "; ".join(errors))
+            ck.check(differ == 0, label + ": every parallel fit has the serial fit's counts"
+                     + (" and fingerprint" if kind == "bigint" else ""),
+                     "%d differences; serial %s" % (differ, facts_of(d_ser)))
+            if method == "implicit_als" and kind != "bigint":
+                continue
+            bound = 0.0 if kind == "bigint" else SCORE_RTOL
+            ck.check(len(ser_top) >= 20 * len(sample) and worst <= bound,
+                     label + ": parallel fits score like the serial fit",
+                     "%d (customer, item) pairs, largest relative difference %.2g (bound %.0g)"
+                     % (len(ser_top), worst, bound))
+    for q in ("max_parallel_workers_per_gather", "parallel_setup_cost", "parallel_tuple_cost",
+              "min_parallel_table_scan_size", "parallel_leader_participation"):
+        cur.execute("RESET " + q)
+    drop_schema(cur, SCHEMA)
+    conn.close()
+    ck.finish()
+
+
+if __name__ == "__main__":
+    main()
