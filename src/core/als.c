@@ -25,6 +25,7 @@
 #include <cblas.h>
 #include <math.h>
 #include <stdatomic.h>
+#include <stdlib.h>
 #include <string.h>
 
 #define ROWS_PER_BLOCK 64
@@ -398,7 +399,7 @@ aff_solve_row(const float *F, const double *gram, int f, double lambda,
  * scalars of each step and the loss are summed in double.  The Cholesky
  * solver stays in double throughout.
  */
-#define GATHER_BUDGET 2048
+#define GATHER_BUDGET 2048		/* the default of AffAlsParams.gather_budget */
 
 /*
  * out += sum_j w_j y_j over a row's interactions, with d_j = y_j . v and
@@ -634,13 +635,130 @@ solve_cg_block(const float *F, const float *Gf, const double *G, int f, float la
 }
 
 /*
+ * cg for one row longer than the gather budget (a popular item, a heavy
+ * user).
+ * Its vectors do not fit the cache, and reading them in place once per cg
+ * step is a random read each time; instead the row's system
+ *		A = G + lambda I + sum (c - 1) y y^T,	b = sum c y
+ * is formed once, `budget` interactions at a time (gathered, scaled by
+ * sqrt(c - 1), one ssyrk each, added into A in double), and the same cg
+ * steps then run on A (mathematically the iterates of the matrix-free
+ * steps; f x f products instead of passes over the interactions).  The
+ * loss terms need no further pass either: over the row's interactions,
+ * sum c (1 - s)^2 - s^2 = sum c - 2 x.b + x^T (A - G - lambda I) x.
+ * Yg: budget * f floats; Ac: f * f floats; d: f^2 + 5 f doubles.
+ * Returns the row's loss terms (x^T G x included) when with_loss.
+ */
+AFF_KERNEL static double
+solve_cg_long_row(const float *F, const double *G, int f, double lambda,
+				  const int32_t *idx, const float *conf, int64_t len, int steps,
+				  int64_t budget, float *xf, float *Yg, float *Ac, double *d,
+				  int with_loss, double *sq)
+{
+	double	   *A = d;
+	double	   *b = A + (size_t) f * f;
+	double	   *x = b + f;
+	double	   *r = x + f;
+	double	   *p = r + f;
+	double	   *ap = p + f;
+	double		sum_c = 0.0;
+	double		rs;
+	double		loss = 0.0;
+	int64_t		j0;
+	int			a;
+	int			k;
+	int			step;
+
+	for (a = 0; a < f * f; a++)
+		A[a] = G[a];
+	for (a = 0; a < f; a++)
+	{
+		A[a * f + a] += lambda;
+		b[a] = 0.0;
+		x[a] = xf[a];
+	}
+	for (j0 = 0; j0 < len; j0 += budget)
+	{
+		int			n = (int) (len - j0 < budget ? len - j0 : budget);
+		int			q;
+
+		for (q = 0; q < n; q++)
+		{
+			const float *y = F + (size_t) idx[j0 + q] * f;
+			float		c = conf[j0 + q];
+			float		sc = sqrtf(c - 1.0f);
+			float	   *z = Yg + (size_t) q * f;
+
+			sum_c += c;
+#pragma omp simd
+			for (k = 0; k < f; k++)
+			{
+				z[k] = sc * y[k];
+				b[k] += (double) c * y[k];
+			}
+		}
+		cblas_ssyrk(CblasRowMajor, CblasLower, CblasTrans, f, n, 1.0f, Yg, f,
+					0.0f, Ac, f);
+		for (a = 0; a < f; a++)
+			for (k = 0; k <= a; k++)
+				A[a * f + k] += Ac[a * f + k];
+	}
+	for (a = 0; a < f; a++)
+		for (k = a + 1; k < f; k++)
+			A[a * f + k] = A[k * f + a];
+
+	/* the steps of solve_cg on the formed system */
+	gram_times(A, f, 0.0, x, r);
+	for (k = 0; k < f; k++)
+	{
+		r[k] = b[k] - r[k];
+		p[k] = r[k];
+	}
+	rs = dot_dd(r, r, f);
+	for (step = 0; step < steps; step++)
+	{
+		double		pap;
+		double		al;
+		double		rs_new;
+
+		if (rs < 1e-30)
+			break;
+		gram_times(A, f, 0.0, p, ap);
+		pap = dot_dd(p, ap, f);
+		if (!(pap > 0.0))
+			break;
+		al = rs / pap;
+		for (k = 0; k < f; k++)
+		{
+			x[k] += al * p[k];
+			r[k] -= al * ap[k];
+		}
+		rs_new = dot_dd(r, r, f);
+		for (k = 0; k < f; k++)
+			p[k] = r[k] + (rs_new / rs) * p[k];
+		rs = rs_new;
+	}
+	for (k = 0; k < f; k++)
+		xf[k] = (float) x[k];
+	if (!with_loss)
+		return 0.0;
+	/* x^T A x - lambda |x|^2 - 2 x.b + sum c, with x the stored floats */
+	for (k = 0; k < f; k++)
+		x[k] = xf[k];
+	gram_times(A, f, 0.0, x, ap);
+	loss = dot_dd(x, ap, f) - lambda * dot_dd(x, x, f) - 2.0 * dot_dd(x, b, f) + sum_c;
+	*sq = dot_dd(x, x, f);
+	return loss;
+}
+
+/*
  * Cut rows [0, n) into cg blocks (see above): consecutive rows while their
- * interactions fit GATHER_BUDGET, at most ROWS_PER_BLOCK rows.  starts gets
+ * interactions fit the budget, at most ROWS_PER_BLOCK rows.  starts gets
  * the first row of each block and n at the end; returns the block count.
  * The blocks depend on the matrix alone, never on the thread count.
  */
 static int64_t
-cut_blocks(const int64_t *ptr, int64_t n, int64_t *starts)
+cut_blocks(const int64_t *ptr, int64_t n, int64_t budget, int64_t *starts)
 {
 	int64_t		nb = 0;
 	int64_t		r = 0;
@@ -652,11 +770,57 @@ cut_blocks(const int64_t *ptr, int64_t n, int64_t *starts)
 		starts[nb++] = r;
 		r++;
 		while (r < n && r - begin < ROWS_PER_BLOCK &&
-			   ptr[r + 1] - ptr[begin] <= GATHER_BUDGET)
+			   ptr[r + 1] - ptr[begin] <= budget)
 			r++;
 	}
 	starts[nb] = n;
 	return nb;
+}
+
+/* Longest first, then by block number: a fixed order. */
+static int
+cmp_long_blocks(const void *a, const void *b)
+{
+	const int64_t *x = a;
+	const int64_t *y = b;
+
+	if (x[0] != y[0])
+		return x[0] > y[0] ? -1 : 1;
+	return x[1] < y[1] ? -1 : x[1] > y[1];
+}
+
+/*
+ * The order in which the threads take the blocks: the long rows first,
+ * longest first, so that no thread is left with a long row at the end
+ * while the others idle; then the others in row order.  pairs: scratch of
+ * 2 nb entries.  Which thread takes which block never changes a result.
+ */
+static void
+order_blocks(const int64_t *ptr, const int64_t *starts, int64_t nb, int64_t budget,
+			 int64_t *order, int64_t *pairs)
+{
+	int64_t		n_long = 0;
+	int64_t		b;
+	int64_t		at;
+
+	for (b = 0; b < nb; b++)
+	{
+		int64_t		len = ptr[starts[b + 1]] - ptr[starts[b]];
+
+		if (len > budget)
+		{
+			pairs[2 * n_long] = len;
+			pairs[2 * n_long + 1] = b;
+			n_long++;
+		}
+	}
+	qsort(pairs, (size_t) n_long, 2 * sizeof(int64_t), cmp_long_blocks);
+	for (b = 0; b < n_long; b++)
+		order[b] = pairs[2 * b + 1];
+	at = n_long;
+	for (b = 0; b < nb; b++)
+		if (ptr[starts[b + 1]] - ptr[starts[b]] <= budget)
+			order[at++] = b;
 }
 
 /* One half-sweep: solve rows of `out` against the fixed side `F`. */
@@ -669,6 +833,7 @@ typedef struct HalfSweep
 	const int32_t *idx;
 	const float *conf;
 	const int64_t *starts;		/* cg blocks */
+	const int64_t *order;		/* cg blocks in the order they are taken */
 	int			with_loss;		/* cg: the loss terms into block_sums */
 	atomic_int	failed;
 } HalfSweep;
@@ -688,22 +853,32 @@ half_sweep_block(void *arg, int thread_no, int64_t block_no, int64_t begin,
 		/* row offsets relative to the block for solve_cg_block */
 		int64_t		ptr[ROWS_PER_BLOCK + 1];
 		float	   *fs = s->fscratch + (size_t) thread_no * s->fscratch_len;
-		float	   *Yg = fs + (size_t) 4 * ROWS_PER_BLOCK * f;
+		float	   *Yg = fs + (size_t) (4 * ROWS_PER_BLOCK > f ? 4 * ROWS_PER_BLOCK : f) * f;
 		int64_t		base;
 		double		sq = 0.0;
 		double		sum;
 
+		block_no = h->order[block_no];
 		begin = h->starts[block_no];
 		end = h->starts[block_no + 1];
 		base = h->ptr[begin];
-		for (r = begin; r <= end; r++)
-			ptr[r - begin] = h->ptr[r] - base;
-		sum = solve_cg_block(h->F, s->gram_sym_f, h->with_loss ? s->gram : NULL,
-							 f, (float) s->p.regularization, ptr,
-							 h->idx + base, h->conf + base, end - begin,
-							 s->p.solver_steps, h->out + (size_t) begin * f,
-							 ptr[end - begin] <= GATHER_BUDGET ? Yg : NULL,
-							 fs, scratch, scratch + ROWS_PER_BLOCK, &sq);
+		if (h->ptr[end] - base > s->budget)
+			/* a long row, a block of its own */
+			sum = solve_cg_long_row(h->F, s->gram, f, s->p.regularization,
+									h->idx + base, h->conf + base, h->ptr[end] - base,
+									s->p.solver_steps, s->budget,
+									h->out + (size_t) begin * f, Yg, fs, scratch,
+									h->with_loss, &sq);
+		else
+		{
+			for (r = begin; r <= end; r++)
+				ptr[r - begin] = h->ptr[r] - base;
+			sum = solve_cg_block(h->F, s->gram_sym_f, h->with_loss ? s->gram : NULL,
+								 f, (float) s->p.regularization, ptr,
+								 h->idx + base, h->conf + base, end - begin,
+								 s->p.solver_steps, h->out + (size_t) begin * f,
+								 Yg, fs, scratch, scratch + ROWS_PER_BLOCK, &sq);
+		}
 		if (h->with_loss)
 		{
 			s->block_sums[block_no] = sum;
@@ -727,7 +902,7 @@ half_sweep_block(void *arg, int thread_no, int64_t block_no, int64_t begin,
 static AffStatus
 half_sweep(AffAls *s, const float *F, float *out, int64_t n_rows,
 		   const int64_t *ptr, const int32_t *idx, const float *conf,
-		   const int64_t *starts, int64_t n_blocks, int with_loss,
+		   const int64_t *starts, const int64_t *order, int64_t n_blocks, int with_loss,
 		   AffPollFn poll, void *poll_arg, AffError *err)
 {
 	HalfSweep	h;
@@ -743,6 +918,7 @@ half_sweep(AffAls *s, const float *F, float *out, int64_t n_rows,
 	h.idx = idx;
 	h.conf = conf;
 	h.starts = starts;
+	h.order = order;
 	h.with_loss = with_loss;
 	atomic_init(&h.failed, 0);
 	if (s->p.solver == AFF_SOLVER_CG)
@@ -825,21 +1001,91 @@ splitmix64(uint64_t *state)
 	return z ^ (z >> 31);
 }
 
-/* Fill v with n normal deviates of standard deviation sd (Box-Muller). */
+/*
+ * Fill v[2 q_begin .. min(2 q_end, n)) with normal deviates of standard
+ * deviation sd (Box-Muller), pair q from draws 2q + 1 and 2q + 2 of
+ * splitmix64 started at s0.  splitmix64 steps its state by a constant, so
+ * the k-th draw is the mix of s0 + k * step: any range of pairs can be
+ * filled on its own, and the values do not depend on how the pairs are
+ * shared out.
+ */
 static void
-fill_normal(float *v, size_t n, double sd, uint64_t *state)
+fill_normal_pairs(float *v, size_t n, double sd, uint64_t s0, size_t q_begin,
+				  size_t q_end)
 {
-	size_t		i;
+	size_t		q;
 
-	for (i = 0; i < n; i += 2)
+	for (q = q_begin; q < q_end; q++)
 	{
-		double		u1 = ((splitmix64(state) >> 11) + 1.0) * (1.0 / 9007199254740993.0);
-		double		u2 = (splitmix64(state) >> 11) * (1.0 / 9007199254740992.0);
+		uint64_t	state = s0 + (uint64_t) (2 * q) * 0x9e3779b97f4a7c15ULL;
+		double		u1 = ((splitmix64(&state) >> 11) + 1.0) * (1.0 / 9007199254740993.0);
+		double		u2 = (splitmix64(&state) >> 11) * (1.0 / 9007199254740992.0);
 		double		rad = sqrt(-2.0 * log(u1));
+		size_t		i = 2 * q;
 
 		v[i] = (float) (sd * rad * cos(2.0 * M_PI * u2));
 		if (i + 1 < n)
 			v[i + 1] = (float) (sd * rad * sin(2.0 * M_PI * u2));
+	}
+}
+
+/* The initial factors, in blocks of pairs on the fit's threads. */
+typedef struct InitJob
+{
+	AffAls	   *s;
+	uint64_t	seed_x;			/* splitmix64 state where X's draws start */
+	int64_t		y_pairs;		/* pairs of Y, then of X */
+	int64_t		x_pairs;
+} InitJob;
+
+static void
+init_block(void *arg, int thread_no, int64_t block_no, int64_t begin, int64_t end)
+{
+	InitJob    *j = arg;
+	AffAls	   *s = j->s;
+	const AffMatrix *m = s->m;
+	size_t		ny = (size_t) m->n_items * s->p.factors;
+	size_t		nx = (size_t) m->n_users * s->p.factors;
+	int64_t		q;
+
+	(void) thread_no;
+	(void) block_no;
+	for (q = begin; q < end;)
+	{
+		if (q < j->y_pairs)
+		{
+			int64_t		e = end < j->y_pairs ? end : j->y_pairs;
+
+			fill_normal_pairs(s->Y, ny, 0.01, s->p.seed, (size_t) q, (size_t) e);
+			q = e;
+		}
+		else
+		{
+			int64_t		e = end < j->y_pairs + j->x_pairs ? end : j->y_pairs + j->x_pairs;
+
+			fill_normal_pairs(s->X, nx, 0.01, j->seed_x, (size_t) (q - j->y_pairs),
+							  (size_t) (e - j->y_pairs));
+			q = e;
+		}
+	}
+}
+
+/* Confidences of interactions [begin, end), both orders. */
+static void
+conf_block(void *arg, int thread_no, int64_t block_no, int64_t begin, int64_t end)
+{
+	AffAls	   *s = arg;
+	const AffMatrix *m = s->m;
+	int64_t		k;
+
+	(void) thread_no;
+	(void) block_no;
+	for (k = begin; k < end; k++)
+	{
+		s->row_conf[k] = (float) aff_confidence(s->p.confidence, s->p.alpha,
+												s->p.epsilon, m->row_val[k]);
+		s->col_conf[k] = (float) aff_confidence(s->p.confidence, s->p.alpha,
+												s->p.epsilon, m->col_val[k]);
 	}
 }
 
@@ -852,8 +1098,6 @@ aff_als_init(AffAls *s, const AffMatrix *m, const AffAlsParams *p,
 			 const AffAllocator *a, AffError *err)
 {
 	int			f = p->factors;
-	uint64_t	state = p->seed;
-	int64_t		j;
 	size_t		nx;
 	size_t		ny;
 
@@ -868,17 +1112,38 @@ aff_als_init(AffAls *s, const AffMatrix *m, const AffAlsParams *p,
 	if (s->scratch_len < (size_t) (4 * f + 1) * ROWS_PER_BLOCK + (size_t) ROWS_PER_BLOCK)
 		s->scratch_len = (size_t) (4 * f + 1) * ROWS_PER_BLOCK + (size_t) ROWS_PER_BLOCK;
 	s->max_blocks = (m->n_users > m->n_items ? m->n_users : m->n_items) / ROWS_PER_BLOCK + 1;
-	s->fscratch_len = ((size_t) 4 * ROWS_PER_BLOCK + GATHER_BUDGET) * (size_t) f;
+	/* cg vectors of a block (or a long row's f x f chunk sum), then the gather buffer */
+	s->budget = p->gather_budget > 0 ? p->gather_budget : GATHER_BUDGET;
+	s->fscratch_len = ((size_t) (4 * ROWS_PER_BLOCK > f ? 4 * ROWS_PER_BLOCK : f) +
+					   (size_t) s->budget) * (size_t) f;
 	s->fscratch = aff_alloc_array(a, s->fscratch_len * (size_t) p->threads, sizeof(float));
 	s->gram_sym_f = aff_alloc_array(a, (size_t) f * f, sizeof(float));
 	s->user_starts = aff_alloc_array(a, (size_t) m->n_users + 1, sizeof(int64_t));
 	s->item_starts = aff_alloc_array(a, (size_t) m->n_items + 1, sizeof(int64_t));
-	if (s->user_starts && s->item_starts)
+	s->user_order = aff_alloc_array(a, (size_t) m->n_users + 1, sizeof(int64_t));
+	s->item_order = aff_alloc_array(a, (size_t) m->n_items + 1, sizeof(int64_t));
+	if (s->user_starts && s->item_starts && s->user_order && s->item_order)
 	{
-		s->n_user_blocks = cut_blocks(m->row_ptr, m->n_users, s->user_starts);
-		s->n_item_blocks = cut_blocks(m->col_ptr, m->n_items, s->item_starts);
+		int64_t		nmax = m->n_users > m->n_items ? m->n_users : m->n_items;
+		int64_t    *pairs = aff_alloc_array(a, 2 * (size_t) nmax + 2, sizeof(int64_t));
+
+		s->n_user_blocks = cut_blocks(m->row_ptr, m->n_users, s->budget, s->user_starts);
+		s->n_item_blocks = cut_blocks(m->col_ptr, m->n_items, s->budget, s->item_starts);
 		if (s->n_item_blocks > s->max_blocks)
 			s->max_blocks = s->n_item_blocks;
+		if (pairs != NULL)
+		{
+			order_blocks(m->row_ptr, s->user_starts, s->n_user_blocks, s->budget,
+						 s->user_order, pairs);
+			order_blocks(m->col_ptr, s->item_starts, s->n_item_blocks, s->budget,
+						 s->item_order, pairs);
+			aff_release(a, pairs);
+		}
+		else
+		{
+			aff_release(a, s->user_order);
+			s->user_order = NULL;	/* reported below */
+		}
 	}
 	s->X = aff_alloc_array(a, nx, sizeof(float));
 	s->Y = aff_alloc_array(a, ny, sizeof(float));
@@ -891,18 +1156,31 @@ aff_als_init(AffAls *s, const AffMatrix *m, const AffAlsParams *p,
 	s->block_sq = aff_alloc_array(a, (size_t) s->max_blocks, sizeof(double));
 	if (!s->X || !s->Y || !s->row_conf || !s->col_conf || !s->gram_f ||
 		!s->gram || !s->scratch || !s->block_sums || !s->block_sq ||
-		!s->fscratch || !s->gram_sym_f || !s->user_starts || !s->item_starts)
+		!s->fscratch || !s->gram_sym_f || !s->user_starts || !s->item_starts ||
+		!s->user_order || !s->item_order)
 	{
 		aff_als_free(s, a);
 		return aff_fail(err, AFF_ERR_NOMEM, "out of memory for the factor matrices");
 	}
-	/* item factors first, then user factors: a fixed order for the seed */
-	fill_normal(s->Y, ny, 0.01, &state);
-	fill_normal(s->X, nx, 0.01, &state);
-	for (j = 0; j < m->nnz; j++)
+	/*
+	 * Item factors first, then user factors: a fixed order of the seed's
+	 * draws (two a pair of values), whatever the thread count.
+	 */
 	{
-		s->row_conf[j] = (float) aff_confidence(p->confidence, p->alpha, p->epsilon, m->row_val[j]);
-		s->col_conf[j] = (float) aff_confidence(p->confidence, p->alpha, p->epsilon, m->col_val[j]);
+		InitJob		job;
+		int64_t		units;
+
+		job.s = s;
+		job.y_pairs = (int64_t) ((ny + 1) / 2);
+		job.x_pairs = (int64_t) ((nx + 1) / 2);
+		job.seed_x = p->seed + (uint64_t) (2 * job.y_pairs) * 0x9e3779b97f4a7c15ULL;
+		units = job.y_pairs + job.x_pairs;
+		if (aff_parallel_for(p->threads, units, 8192, init_block, &job, NULL, NULL, err) != AFF_OK ||
+			aff_parallel_for(p->threads, m->nnz, 65536, conf_block, s, NULL, NULL, err) != AFF_OK)
+		{
+			aff_als_free(s, a);
+			return err->status;
+		}
 	}
 	return AFF_OK;
 }
@@ -927,7 +1205,7 @@ aff_als_sweep(AffAls *s, double *loss, AffPollFn poll, void *poll_arg,
 	if (!s->gram_is_y)
 		aff_gram(s->Y, m->n_items, f, s->p.threads, s->gram_f, s->gram);
 	st = half_sweep(s, s->Y, s->X, m->n_users, m->row_ptr, m->row_idx,
-					s->row_conf, s->user_starts, s->n_user_blocks, 0,
+					s->row_conf, s->user_starts, s->user_order, s->n_user_blocks, 0,
 					poll, poll_arg, err);
 	if (st != AFF_OK)
 		return st;
@@ -937,7 +1215,7 @@ aff_als_sweep(AffAls *s, double *loss, AffPollFn poll, void *poll_arg,
 	s->gram_is_y = 0;
 	/* cg: the item blocks also sum the loss terms (by items, with X^T X) */
 	st = half_sweep(s, s->X, s->Y, m->n_items, m->col_ptr, m->col_idx,
-					s->col_conf, s->item_starts, s->n_item_blocks, cg,
+					s->col_conf, s->item_starts, s->item_order, s->n_item_blocks, cg,
 					poll, poll_arg, err);
 	if (st != AFF_OK)
 		return st;
@@ -992,5 +1270,7 @@ aff_als_free(AffAls *s, const AffAllocator *a)
 	aff_release(a, s->gram_sym_f);
 	aff_release(a, s->user_starts);
 	aff_release(a, s->item_starts);
+	aff_release(a, s->user_order);
+	aff_release(a, s->item_order);
 	memset(s, 0, sizeof(*s));
 }

@@ -22,6 +22,7 @@ typedef struct AffAlsParams
 	double		alpha;
 	double		epsilon;
 	uint64_t	seed;
+	int64_t		gather_budget;	/* cg: interactions gathered per block; 0: the default */
 } AffAlsParams;
 
 typedef struct AffAls
@@ -47,8 +48,11 @@ typedef struct AffAls
 	double	   *block_sq;		/* per-block sums of |y|^2 (the loss) */
 	int64_t    *user_starts;	/* [n_user_blocks + 1] first row of each block */
 	int64_t    *item_starts;	/* [n_item_blocks + 1] */
+	int64_t    *user_order;		/* user blocks in the order they are taken */
+	int64_t    *item_order;
 	int64_t		n_user_blocks;
 	int64_t		n_item_blocks;
+	int64_t		budget;			/* interactions gathered per block at most */
 } AffAls;
 
 extern double aff_confidence(int kind, double alpha, double epsilon, double w);
