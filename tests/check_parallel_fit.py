@@ -27,8 +27,11 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 from _common import Checker, connect, drop_schema, fresh_schema  # noqa: E402
 
 SCHEMA = "affinity_check_parallel_fit"
-N_ROWS = 300000              # about 1600 pages: every worker gets a share
-REPEATS = 6                  # parallel fits per key type and method
+# about 1600 pages, so every worker gets a share and sends a state of megabytes, far more
+# than a tuple queue's ring holds; AFFINITY_TEST_LONG: 3M rows.  Repeats per key type and
+# method: AFFINITY_PARALLEL_FIT_REPEATS (6).
+N_ROWS = 3000000 if os.environ.get("AFFINITY_TEST_LONG") else 300000
+REPEATS = int(os.environ.get("AFFINITY_PARALLEL_FIT_REPEATS", "6"))
 SCORE_RTOL = 1e-6            # item_knn scores of two fits: float rounding only
 
 PARALLEL = ["SET max_parallel_workers_per_gather = 2", "SET parallel_setup_cost = 0",
@@ -77,6 +80,7 @@ def main():
     cur = conn.cursor()
     fresh_schema(cur, SCHEMA)
     # invented rows: 8192 customers, 1024 products, weights 1 to 5, duplicate pairs
+    print("%d rows, %d forced-parallel fits per key type and method" % (N_ROWS, REPEATS))
     cur.execute("""CREATE TABLE pf_rows AS
                    SELECT (hashint4(g) & 8191)::bigint AS u,
                           (hashint4(g * 31 + 7) & 1023)::bigint AS i,
