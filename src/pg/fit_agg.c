@@ -85,6 +85,9 @@ static double held_peak = 0;
  */
 static double held_wire = 0;
 
+/* First word of a serialized fit state. */
+#define FIT_STATE_MAGIC 0x41465331	/* "AFS1" */
+
 /* Re-keying gives up after this many colliding keys (each is ~n^2/2^65). */
 #define MAX_REKEY_TRIES 8
 
@@ -666,6 +669,10 @@ affinity_fit_serialfn(PG_FUNCTION_ARGS)
 				 errhint("Run the fit without parallel workers: SET max_parallel_workers_per_gather = 0.")));
 	pq_begintypsend(&buf);
 	enlargeStringInfo(&buf, (int) bytes);	/* one allocation, not doublings */
+	/* which build wrote it (see affinity_library_tag) */
+	pq_sendint32(&buf, FIT_STATE_MAGIC);
+	pq_sendint64(&buf, (int64) affinity_library_tag);
+	pq_sendint32(&buf, (int32) sizeof(FitOptions));
 	pq_sendint8(&buf, st->have_options ? 1 : 0);
 	pq_sendbytes(&buf, (const char *) &st->opts, sizeof(FitOptions));
 	pq_sendint64(&buf, st->rows_read);
@@ -724,6 +731,23 @@ affinity_fit_deserialfn(PG_FUNCTION_ARGS)
 	buf.len = VARSIZE_ANY_EXHDR(b);
 	buf.maxlen = 0;
 	buf.cursor = 0;
+	if (buf.len < 16 || (uint32) pq_getmsgint(&buf, 4) != FIT_STATE_MAGIC)
+		elog(ERROR, "invalid serialized affinity.fit state");
+	{
+		uint64		tag = (uint64) pq_getmsgint64(&buf);
+		int			opts_size = pq_getmsgint(&buf, 4);
+
+		if (tag != affinity_library_tag || opts_size != (int) sizeof(FitOptions))
+			ereport(ERROR,
+					(errcode(ERRCODE_OBJECT_NOT_IN_PREREQUISITE_STATE),
+					 errmsg("a parallel worker of affinity.fit runs another build of the affinity library"),
+					 errdetail("The library file was installed again after this session loaded it "
+							   "(file tag %016llx here, %016llx in the worker).",
+							   (unsigned long long) affinity_library_tag,
+							   (unsigned long long) tag),
+					 errhint("Reconnect to load the installed build, or run the fit without parallel "
+							 "workers: SET max_parallel_workers_per_gather = 0.")));
+	}
 	st->have_options = pq_getmsgbyte(&buf) != 0;
 	memcpy(&st->opts, pq_getmsgbytes(&buf, sizeof(FitOptions)), sizeof(FitOptions));
 	st->rows_read = pq_getmsgint64(&buf);
