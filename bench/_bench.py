@@ -154,15 +154,20 @@ def sgemm_rates():
     r = subprocess.run([exe, "2048", "1", "2"], capture_output=True, text=True, check=True)
     rates = [json.loads(line) for line in r.stdout.splitlines() if line.startswith("{")]
     for x in rates:
-        log("  %s n=%d threads=%d: %.1f GFLOP/s (%s kernel)"
-            % (x["routine"], x["n"], x["threads"], x["gflops"], x["core"]))
+        if x["routine"] == "triad":
+            log("  triad threads=%d: %.1f GB/s (memory bandwidth, 12 bytes an element)"
+                % (x["threads"], x["gbytes_per_s"]))
+        else:
+            log("  %s n=%d threads=%d: %.1f GFLOP/s (%s kernel)"
+                % (x["routine"], x["n"], x["threads"], x["gflops"], x["core"]))
     return rates
 
 
 def rate_of(rates, routine, threads):
+    """GFLOP/s of sgemm or dgemm, GB/s of the triad, at a thread count."""
     for x in rates:
         if x["routine"] == routine and x["threads"] == threads:
-            return x["gflops"]
+            return x["gbytes_per_s"] if routine == "triad" else x["gflops"]
     return None
 
 

@@ -11,8 +11,14 @@
  * Prints one JSON object per line:
  *	{"routine": "sgemm", "n": 2048, "threads": 1, "best_seconds": ..., "gflops": ...}
  * with gflops = 2 n^3 / best time of a few runs (after one warm-up run).
+ * Then the memory bandwidth by a triad, a[i] = b[i] + s c[i] over three
+ * arrays of 2^25 floats (128 MB each, far beyond any cache), split among
+ * the threads:
+ *	{"routine": "triad", "threads": 1, "bytes": ..., "best_seconds": ..., "gbytes_per_s": ...}
+ * counting 12 bytes an element (two reads, one write), as STREAM does.
  */
 #include <cblas.h>
+#include <pthread.h>
 #include <stdio.h>
 #include <stdlib.h>
 #include <time.h>
@@ -72,6 +78,63 @@ best_of(int is_double, int n, void *a, void *b, void *c)
 	return best;
 }
 
+#define TRIAD_LEN ((size_t) 1 << 25)
+
+typedef struct Triad
+{
+	float	   *a;
+	const float *b;
+	const float *c;
+	size_t		begin;
+	size_t		end;
+} Triad;
+
+static void *
+triad_part(void *arg)
+{
+	Triad	   *t = arg;
+	size_t		i;
+
+	for (i = t->begin; i < t->end; i++)
+		t->a[i] = t->b[i] + 3.0f * t->c[i];
+	return NULL;
+}
+
+/* Best seconds of a few triads over TRIAD_LEN elements on `threads` threads. */
+static double
+triad_best(int threads, float *a, const float *b, const float *c)
+{
+	double		best = 1e30;
+	int			rep;
+
+	for (rep = 0; rep < 6; rep++)
+	{
+		pthread_t	th[64];
+		Triad		part[64];
+		double		t0 = now();
+		double		t;
+		int			k;
+
+		for (k = 0; k < threads; k++)
+		{
+			part[k].a = a;
+			part[k].b = b;
+			part[k].c = c;
+			part[k].begin = TRIAD_LEN * k / threads;
+			part[k].end = TRIAD_LEN * (k + 1) / threads;
+			if (k > 0)
+				pthread_create(&th[k], NULL, triad_part, &part[k]);
+		}
+		triad_part(&part[0]);
+		for (k = 1; k < threads; k++)
+			pthread_join(th[k], NULL);
+		t = now() - t0;
+		if (rep > 0 && t < best)	/* run 0 is the warm-up (first touch) */
+			best = t;
+	}
+	return best;
+}
+
 int
 main(int argc, char **argv)
 {
@@ -124,6 +187,32 @@ main(int argc, char **argv)
 				   s, 2.0 * n * (double) n * n / s / 1e9);
 			fflush(stdout);
 		}
+	}
+	free(af);
+	free(bf);
+	free(cf);
+	af = malloc(TRIAD_LEN * sizeof(float));
+	bf = malloc(TRIAD_LEN * sizeof(float));
+	cf = malloc(TRIAD_LEN * sizeof(float));
+	if (!af || !bf || !cf)
+	{
+		fprintf(stderr, "out of memory\n");
+		return 1;
+	}
+	fill(bf, NULL, TRIAD_LEN, 3);
+	fill(cf, NULL, TRIAD_LEN, 4);
+	for (t = 0; t < nthreads; t++)
+	{
+		int			threads = argc > 2 ? atoi(argv[t + 2]) : default_threads[t];
+		double		s;
+
+		if (threads < 1 || threads > 64)
+			continue;
+		s = triad_best(threads, af, bf, cf);
+		printf("{\"routine\": \"triad\", \"threads\": %d, \"bytes\": %.0f, "
+			   "\"best_seconds\": %.6f, \"gbytes_per_s\": %.2f}\n",
+			   threads, 12.0 * TRIAD_LEN, s, 12.0 * TRIAD_LEN / s / 1e9);
+		fflush(stdout);
 	}
 	return 0;
 }

@@ -22,6 +22,7 @@ typedef struct AffAlsParams
 	double		alpha;
 	double		epsilon;
 	uint64_t	seed;
+	int64_t		gather_budget;	/* cg: interactions gathered per block; 0: the default */
 } AffAlsParams;
 
 typedef struct AffAls
@@ -40,6 +41,18 @@ typedef struct AffAls
 	double	   *block_sums;		/* per-block partial sums, summed in order */
 	int64_t		max_blocks;
 	int			gram_is_y;		/* gram currently holds Y^T Y */
+	/* cg */
+	float	   *gram_sym_f;		/* [f * f] gram, full, single precision */
+	float	   *fscratch;		/* per-thread cg vectors and gather buffer */
+	size_t		fscratch_len;	/* floats per thread */
+	double	   *block_sq;		/* per-block sums of |y|^2 (the loss) */
+	int64_t    *user_starts;	/* [n_user_blocks + 1] first row of each block */
+	int64_t    *item_starts;	/* [n_item_blocks + 1] */
+	int64_t    *user_order;		/* user blocks in the order they are taken */
+	int64_t    *item_order;
+	int64_t		n_user_blocks;
+	int64_t		n_item_blocks;
+	int64_t		budget;			/* interactions gathered per block at most */
 } AffAls;
 
 extern double aff_confidence(int kind, double alpha, double epsilon, double w);

@@ -23,6 +23,9 @@
 
 #include "text_key.h"
 
+/* Item ids spanning at most this many values per item are indexed by offset. */
+#define DENSE_SPAN_PER_ITEM 4
+
 /* Elements between two polls: about a millisecond of the slowest pass. */
 #define POLL_EVERY		((int64_t) 1 << 16)
 
@@ -164,44 +167,63 @@ int64_byte(const int64_t *k, int pass)
 }
 
 /*
- * One LSD radix sort body for both element types: PASSES byte passes over
- * n elements of TYPE, BYTE(element pointer, pass) giving the pass's byte,
- * with tmp (n more elements) as the second buffer.  Passes whose byte is
- * the same for every element are skipped, so ids that fit in a few bytes
- * cost a few passes.  Stable and O(n) per pass.  The enclosing function
- * returns 1 when the poll asks to stop (the data is then left unsorted).
+ * One LSD radix sort body for both element types: passes FIRST..PASSES-1
+ * over n elements of TYPE, BYTE(element pointer, pass) giving the pass's
+ * byte, with tmp (n more elements) as the second buffer.  LIVE(data, n, p)
+ * first finds the passes whose byte is not the same for every element (a
+ * bit each; UINT32_MAX when the poll asks to stop): only those are counted
+ * and run, so ids that fit in a few bytes cost a few passes.  Their
+ * histograms are counted in one read of the data (a byte's histogram does
+ * not depend on the order).
+ * Stable and O(n) per pass.  The enclosing function returns 1 when the
+ * poll asks to stop (the data is then left unsorted).  count: PASSES * 256
+ * entries of scratch.
  */
-#define RADIX_SORT_BODY(TYPE, PASSES, BYTE) \
+#define RADIX_SORT_BODY(TYPE, FIRST, PASSES, BYTE, LIVE, count) \
 	do { \
 		TYPE	   *src = data; \
 		TYPE	   *dst = tmp; \
 		int			pass; \
-		for (pass = 0; pass < (PASSES); pass++) \
+		int			live[PASSES]; \
+		int			n_live = 0; \
+		int64_t		i; \
+		uint32_t	mask; \
+		if (n == 0) \
+			return 0; \
+		mask = LIVE(src, n, p); \
+		if (mask == UINT32_MAX) \
+			return 1; \
+		for (pass = (FIRST); pass < (PASSES); pass++) \
+			if (mask & (1u << pass)) \
+				live[n_live++] = pass; \
+		memset(count, 0, sizeof(int64_t) * 256 * (PASSES)); \
+		for (i = 0; i < n; i++) \
 		{ \
-			int64_t		count[256] = {0}; \
-			int64_t		i; \
+			int			l; \
+			if (stop_at(p, i)) \
+				return 1; \
+			for (l = 0; l < n_live; l++) \
+				count[live[l] * 256 + BYTE(&src[i], live[l])]++; \
+		} \
+		for (pass = (FIRST); pass < (PASSES); pass++) \
+		{ \
+			int64_t    *cnt = count + pass * 256; \
 			int64_t		at = 0; \
 			int			b; \
 			TYPE	   *t; \
-			for (i = 0; i < n; i++) \
-			{ \
-				if (stop_at(p, i)) \
-					return 1; \
-				count[BYTE(&src[i], pass)]++; \
-			} \
-			if (count[BYTE(&src[0], pass)] == n) \
+			if (!(mask & (1u << pass)) || cnt[BYTE(&src[0], pass)] == n) \
 				continue; \
 			for (b = 0; b < 256; b++) \
 			{ \
-				int64_t		c = count[b]; \
-				count[b] = at; \
+				int64_t		c = cnt[b]; \
+				cnt[b] = at; \
 				at += c; \
 			} \
 			for (i = 0; i < n; i++) \
 			{ \
 				if (stop_at(p, i)) \
 					return 1; \
-				dst[count[BYTE(&src[i], pass)]++] = src[i]; \
+				dst[cnt[BYTE(&src[i], pass)]++] = src[i]; \
 			} \
 			t = src; \
 			src = dst; \
@@ -212,18 +234,138 @@ int64_byte(const int64_t *k, int pass)
 		return 0; \
 	} while (0)
 
-/* Rows by (user, item, weight); it replaces a comparison sort on the fit's hot path. */
+/*
+ * The passes of triple_byte whose byte varies among the rows: the bytes
+ * where some user (item) differs from the first row's.
+ */
+static uint32_t
+triple_live(const AffTriple *t, int64_t n, const AffBuildParams *p)
+{
+	uint64_t	du = 0;
+	uint64_t	di = 0;
+	uint32_t	mask = 0;
+	int64_t		i;
+	int			b;
+
+	for (i = 0; i < n; i++)
+	{
+		if (stop_at(p, i))
+			return UINT32_MAX;
+		du |= (uint64_t) (t[i].user ^ t[0].user);
+		di |= (uint64_t) (t[i].item ^ t[0].item);
+	}
+	for (b = 0; b < 8; b++)
+	{
+		if ((di >> (8 * b)) & 0xff)
+			mask |= 1u << (4 + b);
+		if ((du >> (8 * b)) & 0xff)
+			mask |= 1u << (12 + b);
+	}
+	return mask;
+}
+
+/* The same for int64 keys (int64_byte). */
+static uint32_t
+int64_live(const int64_t *k, int64_t n, const AffBuildParams *p)
+{
+	uint64_t	d = 0;
+	uint32_t	mask = 0;
+	int64_t		i;
+	int			b;
+
+	for (i = 0; i < n; i++)
+	{
+		if (stop_at(p, i))
+			return UINT32_MAX;
+		d |= (uint64_t) (k[i] ^ k[0]);
+	}
+	for (b = 0; b < 8; b++)
+		if ((d >> (8 * b)) & 0xff)
+			mask |= 1u << b;
+	return mask;
+}
+
+/* Weight bits of a row: non-negative floats order like their bit patterns. */
+static inline uint32_t
+weight_bits(const AffTriple *t)
+{
+	uint32_t	w;
+
+	memcpy(&w, &t->weight, 4);
+	return w;
+}
+
+static int
+cmp_weight_bits(const void *a, const void *b)
+{
+	uint32_t	x = weight_bits(a);
+	uint32_t	y = weight_bits(b);
+
+	return x < y ? -1 : x > y;
+}
+
+/*
+ * Rows by (user, item, weight); it replaces a comparison sort on the fit's
+ * hot path.  The radix passes order by (user, item) (passes 4-19); the rows
+ * of one pair, rare, are then ordered by weight where they lie (insertion
+ * for a few, qsort for a long run: equal weight bits are equal rows), the
+ * same order the weight's own radix passes would give.
+ */
+static int
+radix_sort_user_item(AffTriple *data, AffTriple *tmp, int64_t n, const AffBuildParams *p)
+{
+	int64_t		count[20 * 256];
+
+	RADIX_SORT_BODY(AffTriple, 4, 20, triple_byte, triple_live, count);
+}
+
 static int
 radix_sort_triples(AffTriple *data, AffTriple *tmp, int64_t n, const AffBuildParams *p)
 {
-	RADIX_SORT_BODY(AffTriple, 20, triple_byte);
+	int64_t		start = 0;
+
+	if (radix_sort_user_item(data, tmp, n, p))
+		return 1;
+	while (start < n)
+	{
+		int64_t		end = start + 1;
+
+		if (stop_at(p, start))
+			return 1;
+		while (end < n && data[end].user == data[start].user &&
+			   data[end].item == data[start].item)
+			end++;
+		if (end - start > 16)
+			qsort(data + start, (size_t) (end - start), sizeof(AffTriple), cmp_weight_bits);
+		else if (end - start > 1)
+		{
+			int64_t		a;
+
+			for (a = start + 1; a < end; a++)
+			{
+				AffTriple	t = data[a];
+				int64_t		b = a;
+
+				while (b > start && weight_bits(&data[b - 1]) > weight_bits(&t))
+				{
+					data[b] = data[b - 1];
+					b--;
+				}
+				data[b] = t;
+			}
+		}
+		start = end;
+	}
+	return 0;
 }
 
 /* int64 keys, ascending. */
 static int
 radix_sort_int64(int64_t *data, int64_t *tmp, int64_t n, const AffBuildParams *p)
 {
-	RADIX_SORT_BODY(int64_t, 8, int64_byte);
+	int64_t		count[8 * 256];
+
+	RADIX_SORT_BODY(int64_t, 0, 8, int64_byte, int64_live, count);
 }
 
 /*
@@ -445,14 +587,16 @@ static AffStatus
 filter_rows(AffTriple *rows, int64_t *n, const AffBuildParams *p,
 			const AffAllocator *a, AffMatrix *m, AffError *err)
 {
-	int64_t    *items = aff_alloc_array(a, (size_t) *n, sizeof(int64_t));
-	int64_t    *counts = aff_alloc_array(a, (size_t) *n, sizeof(int64_t));
+	/* with min_item_interactions 1 no item is under its minimum: no counts needed */
+	int			need_counts = p->min_item > 1;
+	int64_t    *items = need_counts ? aff_alloc_array(a, (size_t) *n, sizeof(int64_t)) : NULL;
+	int64_t    *counts = need_counts ? aff_alloc_array(a, (size_t) *n, sizeof(int64_t)) : NULL;
 	int64_t		n_items = 0;
-	AffStatus	st;
+	AffStatus	st = AFF_OK;
 
-	if (!items || !counts)
+	if (need_counts && (!items || !counts))
 		st = no_memory(err);
-	else
+	else if (need_counts)
 		st = count_items(rows, *n, items, counts, &n_items, p, err);
 	if (st == AFF_OK)
 		st = apply_minimums(rows, *n, items, counts, n_items, n, p, m, err);
@@ -513,8 +657,23 @@ fill_matrix(const AffTriple *rows, int64_t n, const int64_t *items,
 	int64_t		i;
 	int64_t		u = -1;
 
+	int32_t    *dense = NULL;
+	uint64_t	span = m->n_items > 0 ? (uint64_t) items[m->n_items - 1] - (uint64_t) items[0] : 0;
+
 	st = alloc_matrix(a, m, err);
-	if (st == AFF_OK)
+	/*
+	 * Item ids in a narrow range (as ids from a sequence are): index by the
+	 * id's offset in a plain array instead of hashing every row's id; the
+	 * range is bounded by the item count, so no id can make it large.
+	 */
+	if (st == AFF_OK && span < (uint64_t) DENSE_SPAN_PER_ITEM * (uint64_t) m->n_items)
+	{
+		dense = aff_alloc_array(a, (size_t) span + 1, sizeof(int32_t));
+		if (dense != NULL)
+			for (i = 0; i < m->n_items; i++)
+				dense[(uint64_t) items[i] - (uint64_t) items[0]] = (int32_t) i;
+	}
+	if (st == AFF_OK && dense == NULL)
 		st = key_index_build(&ki, items, m->n_items, p, a, err);
 	if (st == AFF_OK)
 	{
@@ -532,11 +691,14 @@ fill_matrix(const AffTriple *rows, int64_t n, const int64_t *items,
 				m->user_keys[u] = rows[i].user;
 				m->row_ptr[u] = i;
 			}
-			m->row_idx[i] = key_index_find(&ki, rows[i].item);
+			m->row_idx[i] = dense != NULL ?
+				dense[(uint64_t) rows[i].item - (uint64_t) items[0]] :
+				key_index_find(&ki, rows[i].item);
 			m->row_val[i] = rows[i].weight;
 		}
 	}
 	key_index_free(&ki, a);
+	aff_release(a, dense);
 	if (st == AFF_OK)
 	{
 		m->row_ptr[m->n_users] = n;

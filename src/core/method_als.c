@@ -75,6 +75,7 @@ als_fit(const AffMatrix *m, const AffOptions *o, const AffFitContext *cx,
 	p.alpha = o->alpha;
 	p.epsilon = o->epsilon;
 	p.seed = (uint64_t) o->seed;
+	p.gather_budget = 0;		/* the engine's default */
 	if ((st = aff_als_init(&als, m, &p, a, err)) != AFF_OK)
 		return st;
 

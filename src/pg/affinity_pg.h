@@ -68,6 +68,7 @@ extern double affinity_regularization;
 extern double affinity_alpha;
 extern int	affinity_max_fit_memory_mb;
 extern bool affinity_verbose;
+extern uint64 affinity_library_tag;
 
 /*
  * Fit options after merging jsonb, GUCs and built-in defaults (options.c):

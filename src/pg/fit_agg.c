@@ -63,6 +63,7 @@ typedef struct FitState
 	Size		counted;		/* bytes of cxt in held_total */
 	Size		wire_bytes;		/* size of the serialized form it came from */
 	bool		serialized;		/* rows handed on by serialfn, and freed */
+	bool		rows_borrowed;	/* rows point into the serialized bytes (see deserialfn) */
 	bytea	   *result;			/* the model, once finalized */
 	bytea	   *profiles;		/* item profiles (method content), or NULL */
 } FitState;
@@ -84,6 +85,9 @@ static double held_peak = 0;
  * contexts, but memory the fit makes the backend hold.
  */
 static double held_wire = 0;
+
+/* First word of a serialized fit state. */
+#define FIT_STATE_MAGIC 0x41465331	/* "AFS1" */
 
 /* Re-keying gives up after this many colliding keys (each is ~n^2/2^65). */
 #define MAX_REKEY_TRIES 8
@@ -539,6 +543,26 @@ append_rows(FitState *st, const AffTriple *rows, int64 n)
 	st->n_rows += n;
 }
 
+/*
+ * Give a state that borrows its rows from its serialized form (see
+ * affinity_fit_deserialfn) rows of its own: a state that outlives the
+ * combine call must not point into the tuple it was read from.
+ */
+static void
+own_rows(FitState *st)
+{
+	const AffTriple *src = st->rows;
+	int64		n = st->n_rows;
+
+	if (!st->rows_borrowed)
+		return;
+	st->rows = NULL;
+	st->n_rows = st->cap_rows = 0;
+	st->rows_borrowed = false;
+	if (n > 0)
+		append_rows(st, src, n);
+}
+
 /* Options and counters of b are merged into a (a fresh state takes b's). */
 static void
 merge_counts(FitState *a, const FitState *b)
@@ -597,10 +621,12 @@ PG_FUNCTION_INFO_V1(affinity_fit_combinefn);
  * does not matter: the final step sorts them, duplicates included.
  *
  * state2 always comes from affinity_fit_deserialfn, which builds it in its
- * own context under the aggregate context, so it can be taken over as it
- * is: when state1 holds no rows, state2 becomes the result instead of being
- * copied.  Otherwise state2's texts are re-keyed into state1's, its rows
- * appended, and state2 freed at once, so the leader holds each row once.
+ * own context under the aggregate context; its bigint rows still lie in the
+ * serialized bytes, valid for this call only.  When state1 holds no rows,
+ * state2 becomes the result, its rows copied out of those bytes.  Otherwise
+ * state2's texts are re-keyed into state1's, its rows appended (the one copy
+ * of a worker's rows the leader makes), and state2 freed at once, so the
+ * leader holds each row once.
  */
 Datum
 affinity_fit_combinefn(PG_FUNCTION_ARGS)
@@ -622,6 +648,7 @@ affinity_fit_combinefn(PG_FUNCTION_ARGS)
 			merge_counts(b, a);
 			fit_state_free(a);
 		}
+		own_rows(b);
 		account(b, (double) b->wire_bytes);
 		check_growing(b);
 		PG_RETURN_POINTER(b);
@@ -665,6 +692,10 @@ affinity_fit_serialfn(PG_FUNCTION_ARGS)
 				 errhint("Run the fit without parallel workers: SET max_parallel_workers_per_gather = 0.")));
 	pq_begintypsend(&buf);
 	enlargeStringInfo(&buf, (int) bytes);	/* one allocation, not doublings */
+	/* which build wrote it (see affinity_library_tag) */
+	pq_sendint32(&buf, FIT_STATE_MAGIC);
+	pq_sendint64(&buf, (int64) affinity_library_tag);
+	pq_sendint32(&buf, (int32) sizeof(FitOptions));
 	pq_sendint8(&buf, st->have_options ? 1 : 0);
 	pq_sendbytes(&buf, (const char *) &st->opts, sizeof(FitOptions));
 	pq_sendint64(&buf, st->rows_read);
@@ -723,6 +754,23 @@ affinity_fit_deserialfn(PG_FUNCTION_ARGS)
 	buf.len = VARSIZE_ANY_EXHDR(b);
 	buf.maxlen = 0;
 	buf.cursor = 0;
+	if (buf.len < 16 || (uint32) pq_getmsgint(&buf, 4) != FIT_STATE_MAGIC)
+		elog(ERROR, "invalid serialized affinity.fit state");
+	{
+		uint64		tag = (uint64) pq_getmsgint64(&buf);
+		int			opts_size = pq_getmsgint(&buf, 4);
+
+		if (tag != affinity_library_tag || opts_size != (int) sizeof(FitOptions))
+			ereport(ERROR,
+					(errcode(ERRCODE_OBJECT_NOT_IN_PREREQUISITE_STATE),
+					 errmsg("a parallel worker of affinity.fit runs another build of the affinity library"),
+					 errdetail("The library file was installed again after this session loaded it "
+							   "(file tag %016llx here, %016llx in the worker).",
+							   (unsigned long long) affinity_library_tag,
+							   (unsigned long long) tag),
+					 errhint("Reconnect to load the installed build, or run the fit without parallel "
+							 "workers: SET max_parallel_workers_per_gather = 0.")));
+	}
 	st->have_options = pq_getmsgbyte(&buf) != 0;
 	memcpy(&st->opts, pq_getmsgbytes(&buf, sizeof(FitOptions)), sizeof(FitOptions));
 	st->rows_read = pq_getmsgint64(&buf);
@@ -731,12 +779,8 @@ affinity_fit_deserialfn(PG_FUNCTION_ARGS)
 	n = pq_getmsgint64(&buf);
 	if (n < 0 || n > (buf.len - buf.cursor) / (int64) sizeof(AffTriple))
 		elog(ERROR, "invalid serialized affinity.fit state");
-	if (n > 0)
-		reserve_rows(st, n);
-	if (n > 0)
-		memcpy(st->rows, pq_getmsgbytes(&buf, sizeof(AffTriple) * n), sizeof(AffTriple) * n);
-	st->n_rows = n;
 	{
+		const char *src = n > 0 ? pq_getmsgbytes(&buf, sizeof(AffTriple) * n) : NULL;
 		int			kt = pq_getmsgbyte(&buf);
 
 		if (kt != 0 && (!aff_keys_valid(kt) || kt == AFF_KEYS_BIGINT))
@@ -744,6 +788,25 @@ affinity_fit_deserialfn(PG_FUNCTION_ARGS)
 		st->text_keys = kt != 0;
 		st->user_text = aff_keys_side_text(kt, true);
 		st->item_text = aff_keys_side_text(kt, false);
+		if (n > 0 && !st->text_keys)
+		{
+			/*
+			 * Bigint keys: the rows stay where they are, in the bytes the
+			 * deserialized state is combined from in the same call; the
+			 * combine copies them (only through memcpy: they may be
+			 * unaligned).  Text keys are rewritten in place by the combine,
+			 * so they get a copy of their own.
+			 */
+			st->rows = (AffTriple *) src;
+			st->rows_borrowed = true;
+			st->n_rows = st->cap_rows = n;
+		}
+		else if (n > 0)
+		{
+			reserve_rows(st, n);
+			memcpy(st->rows, src, sizeof(AffTriple) * n);
+			st->n_rows = n;
+		}
 	}
 	if (st->text_keys)
 	{

@@ -5,7 +5,9 @@
 #include "affinity_pg.h"
 
 #include <cblas.h>
+#include <dlfcn.h>
 #include <limits.h>
+#include <sys/stat.h>
 #include <unistd.h>
 
 #include "lib/stringinfo.h"
@@ -27,9 +29,51 @@ double		affinity_alpha = 10.0;
 int			affinity_max_fit_memory_mb = 8192;
 bool		affinity_verbose = false;
 
+/*
+ * Which file this process loaded the library from: device, inode, size and
+ * modification time of the shared object, mixed, taken when it is loaded.
+ * A parallel worker loads the library anew; when the file was installed
+ * again since the leader loaded it, the worker runs another build, and
+ * partial states of affinity.fit carry this tag so the leader refuses them
+ * with a clear error instead of misreading them (fit_agg.c).  0 when the
+ * file cannot be found.
+ */
+uint64		affinity_library_tag = 0;
+
+static void
+note_library_file(void)
+{
+	Dl_info		info;
+	struct stat sb;
+	uint64		h = 0x9e3779b97f4a7c15ULL;
+	uint64		parts[5];
+	int			i;
+
+	/*
+	 * The address of a symbol of our own, not _PG_init: an exported name
+	 * may resolve to another library's (every module has a _PG_init).
+	 */
+	if (dladdr((void *) &affinity_library_tag, &info) == 0 || info.dli_fname == NULL ||
+		stat(info.dli_fname, &sb) != 0)
+		return;
+	parts[0] = (uint64) sb.st_dev;
+	parts[1] = (uint64) sb.st_ino;
+	parts[2] = (uint64) sb.st_size;
+	parts[3] = (uint64) sb.st_mtim.tv_sec;
+	parts[4] = (uint64) sb.st_mtim.tv_nsec;
+	for (i = 0; i < 5; i++)
+	{
+		h ^= parts[i];
+		h *= 0xbf58476d1ce4e5b9ULL;
+		h ^= h >> 31;
+	}
+	affinity_library_tag = h;
+}
+
 void
 _PG_init(void)
 {
+	note_library_file();
 	DefineCustomIntVariable("affinity.threads",
 							"Worker threads for a fit; 0 means all online CPUs.",
 							"Capped by affinity.max_threads.",
