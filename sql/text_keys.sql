@@ -34,6 +34,13 @@ SELECT user_id FROM txt, affinity.user_vectors(model, ARRAY['C-005', 'C-404']);
 SELECT count(*) AS items FROM txt, affinity.item_vectors(model, NULL::text[]);
 SELECT count(*) AS rows, count(DISTINCT user_id) AS users FROM txt, affinity.top_items_for_all(model, 2, true, NULL::text[]);
 SELECT user_id, count(*) FROM txt, affinity.top_items_for_all(model, 2, true, ARRAY['C-001', 'C-059']) GROUP BY 1 ORDER BY 1;
+-- the text batch by name: naming only the users keeps every other default
+SELECT user_id, count(*), min(source) AS source
+FROM txt, affinity.top_items_for_all(model, users => ARRAY['C-001', 'C-059', 'nobody']) GROUP BY 1 ORDER BY 1;
+SELECT (SELECT array_agg(user_id || ':' || item_id || ':' || rank ORDER BY user_id, rank)
+        FROM txt, affinity.top_items_for_all(model, users => NULL::text[], k => 2))
+     = (SELECT array_agg(user_id || ':' || item_id || ':' || rank ORDER BY user_id, rank)
+        FROM txt, affinity.top_items_for_all(model, 2, true, NULL::text[])) AS same_as_positional;
 SELECT (affinity.describe(affinity.forget_user(model, 'C-001'))->>'users')::int AS users_after_forget FROM txt;
 SELECT affinity.user_vector(affinity.forget_user(model, 'C-001'), 'C-001') IS NULL AS forgotten,
        affinity.user_vector(affinity.forget_user(model, 'C-001'), 'C-002') = affinity.user_vector(model, 'C-002') AS others_kept
