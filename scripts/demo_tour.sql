@@ -149,3 +149,46 @@ FROM (SELECT m.label,
 	  GROUP BY m.label) AS s
 ORDER BY ndcg DESC;
 \endif
+\echo
+
+\echo '== 9. New products from day one: three products nobody has bought yet, ranked from their descriptions =='
+-- The README's "New products from day one": item profiles from the descriptions (PostgreSQL's
+-- text search), categories and price bands, and method content over them.
+CREATE TEMP TABLE new_products (product_id bigint PRIMARY KEY, name text, category text,
+								price numeric, description text);
+INSERT INTO new_products VALUES
+ (9001, 'Fernhollow Trail Lantern', 'Camping', 29.00, 'folding battery lantern for tents and trails'),
+ (9002, 'Ridge Pour-Over Kettle', 'Kitchen', 34.00, 'gooseneck kettle for pour-over coffee'),
+ (9003, 'Valley Seed Tin', 'Garden', 7.50, 'tin of wildflower seeds for borders and pots');
+CREATE TEMP TABLE catalogue AS
+SELECT product_id, name, category, price, NULL::text AS description FROM demo.products
+UNION ALL SELECT product_id, name, category, price, description FROM new_products;
+CREATE TEMP TABLE profile_rows AS
+SELECT product_id, 'word:' || w AS feature, 1::real AS value
+  FROM catalogue, unnest(tsvector_to_array(to_tsvector('english', name || ' ' || coalesce(description, '')))) w
+UNION ALL
+SELECT product_id, 'category:' || category, 1 FROM catalogue
+UNION ALL
+SELECT product_id, 'price:' || CASE WHEN price < 10 THEN 'low' WHEN price < 30 THEN 'mid' ELSE 'high' END, 1
+  FROM catalogue;
+CREATE TEMP TABLE content_model AS
+SELECT affinity.fit(customer_id, product_id, quantity::real,
+					'{"method": "content", "regularization": 1, "alpha": 10}',
+					(SELECT affinity.item_profiles(product_id, feature, value, '{"normalization": "tfidf"}')
+					   FROM profile_rows)) AS model
+FROM demo.purchases;
+\echo 'Who is most likely to want the new lantern (score of product 9001), and why (affinity.feature_reasons):'
+SELECT c.customer_id, c.segment, round(affinity.score(m.model, c.customer_id, 9001)::numeric, 3) AS score,
+	   (SELECT string_agg(r.feature, ', ' ORDER BY r.rank)
+		  FROM affinity.feature_reasons(m.model, c.customer_id, 9001::bigint, 3) r) AS driven_by
+  FROM content_model m, demo.customers c
+ ORDER BY affinity.score(m.model, c.customer_id, 9001) DESC NULLS LAST, c.customer_id LIMIT 5;
+\echo 'Look-alikes of the new kettle from content (it has no sales, so no purchase-based model has any):'
+SELECT l.rank, p.name, p.category, round(l.similarity::numeric, 3) AS similarity
+  FROM content_model m, affinity.items_like(m.model, 9002::bigint, 5) l
+  JOIN catalogue p ON p.product_id = l.item_id ORDER BY l.rank;
+\echo 'How many customers get each new product in their top 10 (affinity.top_items_for_all on the content model):'
+SELECT p.name, count(*) AS customers
+  FROM content_model m, affinity.top_items_for_all(m.model, 10) t
+  JOIN new_products p ON p.product_id = t.item_id
+ GROUP BY p.name ORDER BY customers DESC;
