@@ -536,6 +536,21 @@ affinity_score(PG_FUNCTION_ARGS)
 	PG_RETURN_FLOAT4(model_method(&v)->pair_score(&s, u, i));
 }
 
+/*
+ * Offer the shares contrib[0 .. n) to a heap of the k largest (t, left
+ * unfinished), for reasons and feature_reasons; returns the first position
+ * whose share is not finite (not offered), or -1.
+ */
+static int64
+rank_shares(const float *contrib, int64 n, int64 k, AffTopK *t)
+{
+	AffItemFilter flt;
+
+	aff_topk_init(t, palloc(sizeof(AffScored) * Max(Min(k, n), 1)), Min(k, n));
+	memset(&flt, 0, sizeof(flt));
+	return aff_topk_scores(contrib, n, &flt, t);
+}
+
 PG_FUNCTION_INFO_V1(affinity_reasons);
 
 /*
@@ -558,7 +573,6 @@ affinity_reasons(PG_FUNCTION_ARGS)
 	int64		n;
 	float	   *contrib;
 	AffTopK		t;
-	AffItemFilter flt;
 	int64		r;
 
 	materialize(fcinfo);
@@ -585,9 +599,7 @@ affinity_reasons(PG_FUNCTION_ARGS)
 	serve_check(meth->contributions(&s, u, i, contrib, &err), &err);
 
 	/* heap over positions in the training list; they follow key order */
-	aff_topk_init(&t, palloc(sizeof(AffScored) * Max(Min(k, n), 1)), Min(k, n));
-	memset(&flt, 0, sizeof(flt));
-	r = aff_topk_scores(contrib, n, &flt, &t);
+	r = rank_shares(contrib, n, k, &t);
 	if (r >= 0)
 		ereport(ERROR,
 				(errcode(ERRCODE_NUMERIC_VALUE_OUT_OF_RANGE),
@@ -648,7 +660,6 @@ affinity_feature_reasons(PG_FUNCTION_ARGS)
 	int32	   *feat;
 	float	   *contrib;
 	AffTopK		t;
-	AffItemFilter flt;
 
 	materialize(fcinfo);
 	if (PG_ARGISNULL(0) || PG_ARGISNULL(1) || PG_ARGISNULL(2))
@@ -675,11 +686,15 @@ affinity_feature_reasons(PG_FUNCTION_ARGS)
 	n = meth->feature_contributions(&s, u, i, feat, contrib);
 
 	/* the largest shares first, as reasons ranks past purchases */
-	aff_topk_init(&t, palloc(sizeof(AffScored) * Max(Min(k, n), 1)), Min(k, n));
-	memset(&flt, 0, sizeof(flt));
-	r = aff_topk_scores(contrib, n, &flt, &t);
+	r = rank_shares(contrib, n, k, &t);
 	if (r >= 0)
-		check_finite_scores(v, false, i, psprintf("the features of user %s", key_cstring(v, true, u)));
+		ereport(ERROR,
+				(errcode(ERRCODE_NUMERIC_VALUE_OUT_OF_RANGE),
+				 errmsg("a contribution is not finite"),
+				 errdetail("The contribution of feature %s to the score of item %s for user %s overflowed the range of real.",
+						   TextDatumGetCString(feature_name(v, feat[r])),
+						   key_cstring(v, false, i), key_cstring(v, true, u)),
+				 errhint("The model's vectors are too large for float arithmetic; refit with a larger regularization.")));
 	n = aff_topk_finish(&t);
 	for (r = 0; r < n; r++)
 	{
